@@ -1,0 +1,3 @@
+from stereomesh.cli import main
+
+raise SystemExit(main())

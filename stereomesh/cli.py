@@ -1,0 +1,171 @@
+"""The ``stereomesh`` command line: thin, over :mod:`stereomesh.pipeline`.
+
+Exit codes: 0 success, 1 internal error, 2 bad input or usage.
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+from pathlib import Path
+
+from stereomesh import __version__
+from stereomesh.errors import InputError
+
+EXIT_OK, EXIT_INTERNAL, EXIT_BAD_INPUT = 0, 1, 2
+
+DEMO_DISP_RANGE = "64:192"
+
+
+def _progress_bar(quiet: bool):
+    """A progress callback drawing a bar on a terminal; silent otherwise."""
+    if quiet or not sys.stderr.isatty():
+        return (lambda step, frac: None), (lambda: None)
+    from tqdm import tqdm
+
+    bar = tqdm(total=100, file=sys.stderr, leave=False, bar_format="{l_bar}{bar}| {elapsed}")
+
+    def update(step: str, frac: float) -> None:
+        bar.set_description_str(step)
+        bar.update(max(0, int(round(frac * 100)) - bar.n))
+
+    return update, bar.close
+
+
+def _params(args, sections):
+    from stereomesh.params import Params, cli_overrides, load_config
+
+    base = load_config(args.config) if getattr(args, "config", None) else Params()
+    return base.with_overrides(cli_overrides(args, sections), source="command line")
+
+
+def _build_parser() -> argparse.ArgumentParser:
+    from stereomesh.params import SECTIONS, add_cli_arguments
+
+    parser = argparse.ArgumentParser(
+        prog="stereomesh",
+        description="Stereo image pairs to coloured, metric meshes with a provenance report.",
+    )
+    parser.add_argument("--version", action="version", version=f"stereomesh {__version__}")
+    sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
+
+    def common(p):
+        p.add_argument("--out", required=True, type=Path, help="output folder")
+        p.add_argument("--quiet", action="store_true", help="no summary line, no progress bar")
+
+    p = sub.add_parser("disparity", help="disparity, confidence and occlusion maps of a pair")
+    p.add_argument("left", type=Path, help="left image")
+    p.add_argument("right", type=Path, help="right image")
+    p.add_argument("--calib", type=Path, required=True, help="calibration JSON")
+    p.add_argument("--config", type=Path, help="TOML file of parameters")
+    common(p)
+    add_cli_arguments(p.add_argument_group("disparity parameters"), ("disparity",))
+
+    p = sub.add_parser("run", help="the whole pipeline: pair in, mesh and report out")
+    p.add_argument("inputs", nargs="+", type=Path, help="LEFT RIGHT image files")
+    p.add_argument("--calib", type=Path, help="calibration JSON")
+    p.add_argument("--config", type=Path, help="TOML file of parameters")
+    common(p)
+    for section in SECTIONS:
+        add_cli_arguments(p.add_argument_group(f"{section} parameters"), (section,))
+
+    p = sub.add_parser("demo", help="render the demo scene's pair and run the pipeline on it")
+    common(p)
+    return parser
+
+
+def _summary(report: dict, kind: str) -> str:
+    st = report["stages"]
+    disp = st.get("disparity", {})
+    parts = [f"{kind}: density {disp.get('density', 0):.1%}",
+             f"occluded {disp.get('occluded_fraction', 0):.1%}"]
+    if "repair" in st:
+        parts.append(f"{st['repair'].get('faces_after', 0)} faces")
+    parts.append(f"{report.get('total_seconds', 0):.1f} s")
+    return ", ".join(parts)
+
+
+def _cmd_disparity(args) -> int:
+    from stereomesh.pipeline import run_disparity
+
+    params = _params(args, ("disparity",))
+    progress, close = _progress_bar(args.quiet)
+    try:
+        report = run_disparity([args.left, args.right], args.calib, args.out, params, progress)
+    finally:
+        close()
+    if not args.quiet:
+        print(_summary(report, "disparity") + f" -> {args.out / 'disparity.pfm'}")
+    return EXIT_OK
+
+
+def _cmd_run(args) -> int:
+    from stereomesh.params import SECTIONS
+    from stereomesh.pipeline import run_pipeline
+
+    params = _params(args, tuple(SECTIONS))
+    progress, close = _progress_bar(args.quiet)
+    try:
+        report = run_pipeline(args.inputs, args.calib, args.out, params, progress)
+    finally:
+        close()
+    if not args.quiet:
+        print(_summary(report, "run") + f" -> {report['outputs']['mesh']}")
+    return EXIT_OK
+
+
+def demo_inputs(out_dir: Path) -> Path:
+    """The folder holding the demo pair: the repo's ``demo_data/`` or a fresh render."""
+    repo_data = Path(__file__).resolve().parent.parent / "demo_data"
+    needed = ("left.png", "right.png", "calib.json")
+    if all((repo_data / n).is_file() for n in needed):
+        return repo_data
+    from stereomesh.demo_scene import write_demo_scene
+
+    target = out_dir / "input"
+    write_demo_scene(target)
+    return target
+
+
+def _cmd_demo(args) -> int:
+    from stereomesh.params import Params
+    from stereomesh.pipeline import run_pipeline
+
+    data = demo_inputs(args.out)
+    params = Params().with_overrides({"disp_range": DEMO_DISP_RANGE})
+    progress, close = _progress_bar(args.quiet)
+    try:
+        report = run_pipeline([data / "left.png", data / "right.png"], data / "calib.json",
+                              args.out, params, progress, command="demo")
+    finally:
+        close()
+    mesh = Path(report["outputs"]["mesh"]).resolve()
+    if not args.quiet:
+        print(_summary(report, "demo"))
+    print(f"mesh: {mesh}")
+    return EXIT_OK
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = _build_parser()
+    args = parser.parse_args(argv)
+    commands = {"disparity": _cmd_disparity, "run": _cmd_run, "demo": _cmd_demo}
+    try:
+        return commands[args.command](args)
+    except InputError as exc:
+        print(f"stereomesh {args.command}: error: {exc}", file=sys.stderr)
+        return EXIT_BAD_INPUT
+    except KeyboardInterrupt:
+        print(f"stereomesh {args.command}: interrupted", file=sys.stderr)
+        return EXIT_INTERNAL
+    except Exception as exc:  # the last line must say what went wrong, not only a trace
+        import traceback
+
+        traceback.print_exc()
+        print(f"stereomesh {args.command}: internal error: {type(exc).__name__}: {exc}",
+              file=sys.stderr)
+        return EXIT_INTERNAL
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())

@@ -1,0 +1,80 @@
+"""Reading stereo images: 8- and 16-bit files, checked and converted to RGB."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+
+from stereomesh.errors import InputError
+
+
+def read_image(path: str | Path) -> np.ndarray:
+    """Read an image file as an RGB array.
+
+    Parameters
+    ----------
+    path : str or Path
+        Any format Pillow or OpenCV reads (PNG, JPEG, TIFF, ...).
+
+    Returns
+    -------
+    (H, W, 3) uint8 or uint16
+        16-bit files keep their depth; grey images are repeated on three channels,
+        an alpha channel is dropped.
+
+    Raises
+    ------
+    InputError
+        If the file is missing or cannot be decoded.
+    """
+    import cv2
+
+    path = Path(path)
+    if not path.is_file():
+        raise InputError(f"{path}: image file not found; check the path")
+    data = np.fromfile(path, np.uint8)
+    img = cv2.imdecode(data, cv2.IMREAD_UNCHANGED) if data.size else None
+    if img is None:
+        raise InputError(
+            f"{path}: not a readable image; give a PNG, JPEG or TIFF file"
+        )
+    if img.dtype not in (np.uint8, np.uint16):
+        img = np.clip(img, 0, 255).astype(np.uint8)
+    if img.ndim == 2:
+        img = np.repeat(img[:, :, None], 3, axis=2)
+    elif img.shape[2] == 4:
+        img = cv2.cvtColor(img, cv2.COLOR_BGRA2RGB)
+    else:
+        img = cv2.cvtColor(img, cv2.COLOR_BGR2RGB)
+    return np.ascontiguousarray(img)
+
+
+def to_uint8(image: np.ndarray) -> np.ndarray:
+    """8-bit copy of an image for colours and previews (16-bit scaled down)."""
+    image = np.asarray(image)
+    if image.dtype == np.uint16:
+        return (image // 257).astype(np.uint8)
+    return image.astype(np.uint8, copy=False)
+
+
+def read_pair(left: str | Path, right: str | Path) -> tuple[np.ndarray, np.ndarray]:
+    """Read a left/right pair and check that the sizes agree."""
+    a = read_image(left)
+    b = read_image(right)
+    if a.shape[:2] != b.shape[:2]:
+        raise InputError(
+            f"{right}: size {b.shape[1]}x{b.shape[0]} differs from {left} "
+            f"({a.shape[1]}x{a.shape[0]}); a rectified pair must have equal sizes"
+        )
+    return a, b
+
+
+def write_png(path: str | Path, image: np.ndarray) -> None:
+    """Write an 8-bit grey or RGB PNG atomically."""
+    from PIL import Image
+
+    from stereomesh.io.atomic import atomic_path
+
+    with atomic_path(path) as tmp:
+        Image.fromarray(np.ascontiguousarray(image)).save(tmp, format="PNG")

@@ -1,0 +1,352 @@
+"""numba kernels of the disparity engine.
+
+Public, validated entry points live in the sibling modules; these functions
+assume contiguous arrays of the documented dtypes and do no checking.
+
+Layout: cost and aggregated volumes are ``(H, W, D)`` C-contiguous with the
+disparity hypothesis innermost, so that every per-pixel update walks one
+contiguous run of memory. Hypothesis ``k`` means disparity ``d_min + k``.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from numba import njit, prange
+
+_BIG = np.int32(1 << 28)
+
+
+@njit(cache=True, inline="always")
+def _popcount64(v):
+    # SWAR popcount; LLVM recognises the pattern and emits a popcnt instruction.
+    v = v - ((v >> np.uint64(1)) & np.uint64(0x5555555555555555))
+    v = (v & np.uint64(0x3333333333333333)) + ((v >> np.uint64(2)) & np.uint64(0x3333333333333333))
+    v = (v + (v >> np.uint64(4))) & np.uint64(0x0F0F0F0F0F0F0F0F)
+    return (v * np.uint64(0x0101010101010101)) >> np.uint64(56)
+
+
+@njit(cache=True, parallel=True)
+def census_transform(gray, win_w, win_h):
+    """Census bit string per pixel: bit set where the neighbour is darker than the centre."""
+    H, W = gray.shape
+    rw = win_w // 2
+    rh = win_h // 2
+    out = np.zeros((H, W), np.uint64)
+    for y in prange(H):
+        for x in range(W):
+            c = gray[y, x]
+            bits = np.uint64(0)
+            for dy in range(-rh, rh + 1):
+                yy = min(max(y + dy, 0), H - 1)
+                for dx in range(-rw, rw + 1):
+                    if dy == 0 and dx == 0:
+                        continue
+                    xx = min(max(x + dx, 0), W - 1)
+                    bits = bits << np.uint64(1)
+                    if gray[yy, xx] < c:
+                        bits = bits | np.uint64(1)
+            out[y, x] = bits
+    return out
+
+
+@njit(cache=True, parallel=True)
+def census_cost_volume(census_left, census_right, d_min, n_disp, invalid_cost):
+    """Hamming distance between left pixel x and right pixel x - d for each hypothesis."""
+    H, W = census_left.shape
+    cost = np.empty((H, W, n_disp), np.uint8)
+    for y in prange(H):
+        for x in range(W):
+            cl = census_left[y, x]
+            for k in range(n_disp):
+                xr = x - (d_min + k)
+                if xr < 0 or xr >= W:
+                    cost[y, x, k] = invalid_cost
+                else:
+                    cost[y, x, k] = np.uint8(_popcount64(cl ^ census_right[y, xr]))
+    return cost
+
+
+@njit(cache=True, inline="always")
+def _penalty2(p1, p2, g_scale, a, b):
+    # P2 shrinks across intensity edges, where depth edges are likely.
+    diff = abs(a - b)
+    p = p2 / (1.0 + diff / g_scale) if g_scale > 0 else p2
+    pi = np.int32(p)
+    return pi if pi > p1 else np.int32(p1 + 1)
+
+
+@njit(cache=True, inline="always")
+def _path_step(c, prev, prev_min, out, p1, p2):
+    # One semi-global matching recurrence step; returns min over d of the new costs.
+    D = c.shape[0]
+    base = prev_min + p2
+    m = _BIG
+    for k in range(D):
+        v = prev[k]
+        if k > 0:
+            t = prev[k - 1] + p1
+            if t < v:
+                v = t
+        if k < D - 1:
+            t = prev[k + 1] + p1
+            if t < v:
+                v = t
+        if base < v:
+            v = base
+        val = np.int32(c[k]) + v - prev_min
+        out[k] = val
+        if val < m:
+            m = val
+    return m
+
+
+@njit(cache=True, parallel=True)
+def aggregate_horizontal(cost, gray, p1, p2, g_scale, total, reverse):
+    """Add the left-to-right (or right-to-left) path costs into ``total``."""
+    H, W, D = cost.shape
+    for y in prange(H):
+        prev = np.empty(D, np.int32)
+        cur = np.empty(D, np.int32)
+        x = W - 1 if reverse else 0
+        pm = _BIG
+        for k in range(D):
+            prev[k] = cost[y, x, k]
+            total[y, x, k] += cost[y, x, k]
+            if prev[k] < pm:
+                pm = prev[k]
+        for i in range(1, W):
+            if reverse:
+                x = W - 1 - i
+                xp = x + 1
+            else:
+                x = i
+                xp = x - 1
+            pen = _penalty2(p1, p2, g_scale, gray[y, x], gray[y, xp])
+            pm = _path_step(cost[y, x], prev, pm, cur, p1, pen)
+            for k in range(D):
+                total[y, x, k] += cur[k]
+            tmp = prev
+            prev = cur
+            cur = tmp
+    return total
+
+
+@njit(cache=True, parallel=True)
+def aggregate_vertical(cost, gray, p1, p2, g_scale, total, upward, diagonals):
+    """Add the vertical (and, if ``diagonals``, both diagonal) path costs into ``total``.
+
+    Rows are swept in order; the pixels of one row are independent given the
+    previous row, so they run in parallel. Private ping-pong row buffers keep
+    reads and writes apart.
+    """
+    H, W, D = cost.shape
+    ndir = 3 if diagonals else 1
+    prev = np.empty((ndir, W, D), np.int32)
+    cur = np.empty((ndir, W, D), np.int32)
+    prev_min = np.empty((ndir, W), np.int32)
+    cur_min = np.empty((ndir, W), np.int32)
+    y0 = H - 1 if upward else 0
+    for x in prange(W):
+        m = _BIG
+        for k in range(D):
+            c = np.int32(cost[y0, x, k])
+            for j in range(ndir):
+                prev[j, x, k] = c
+            total[y0, x, k] += ndir * c
+            if c < m:
+                m = c
+        for j in range(ndir):
+            prev_min[j, x] = m
+    for i in range(1, H):
+        y = H - 1 - i if upward else i
+        yp = y + 1 if upward else y - 1
+        for xi in prange(W):
+            x = np.int64(xi)
+            g = gray[y, x]
+            for j in range(ndir):
+                xp = x
+                if j == 1:
+                    xp = x - 1
+                elif j == 2:
+                    xp = x + 1
+                if xp < 0 or xp >= W:
+                    # The diagonal path enters the image here: it starts afresh.
+                    m = _BIG
+                    for k in range(D):
+                        c = np.int32(cost[y, x, k])
+                        cur[j, x, k] = c
+                        if c < m:
+                            m = c
+                    cur_min[j, x] = m
+                else:
+                    pen = _penalty2(p1, p2, g_scale, g, gray[yp, xp])
+                    cur_min[j, x] = _path_step(
+                        cost[y, x], prev[j, xp], prev_min[j, xp], cur[j, x], p1, pen
+                    )
+            for k in range(D):
+                s = np.int32(0)
+                for j in range(ndir):
+                    s += cur[j, x, k]
+                total[y, x, k] += s
+        tmp = prev
+        prev = cur
+        cur = tmp
+        tmp2 = prev_min
+        prev_min = cur_min
+        cur_min = tmp2
+    return total
+
+
+@njit(cache=True, parallel=True)
+def select_left(volume, d_min):
+    """Winner per pixel with its cost, the second-best cost away from it, and neighbours.
+
+    Returns ``best_k`` (int32, -1 where no hypothesis is valid), ``c_best``,
+    ``c_second`` (best cost at least two hypotheses away from the winner),
+    ``c_minus`` and ``c_plus`` (costs at the winner's neighbours; equal to
+    ``c_best`` at the ends of the range), all float32.
+    """
+    H, W, D = volume.shape
+    best_k = np.empty((H, W), np.int32)
+    c_best = np.empty((H, W), np.float32)
+    c_second = np.empty((H, W), np.float32)
+    c_minus = np.empty((H, W), np.float32)
+    c_plus = np.empty((H, W), np.float32)
+    for y in prange(H):
+        for x in range(W):
+            # Hypotheses whose right pixel lies inside the image.
+            k_lo = max(0, x - W + 1 - d_min)
+            k_hi = min(D, x - d_min + 1)
+            if k_hi <= k_lo:
+                best_k[y, x] = -1
+                c_best[y, x] = 0.0
+                c_second[y, x] = 0.0
+                c_minus[y, x] = 0.0
+                c_plus[y, x] = 0.0
+                continue
+            bk = k_lo
+            bv = volume[y, x, k_lo]
+            for k in range(k_lo + 1, k_hi):
+                v = volume[y, x, k]
+                if v < bv:
+                    bv = v
+                    bk = k
+            sv = np.float32(np.inf)
+            for k in range(k_lo, k_hi):
+                if abs(k - bk) > 1:
+                    v = np.float32(volume[y, x, k])
+                    if v < sv:
+                        sv = v
+            best_k[y, x] = bk
+            c_best[y, x] = bv
+            c_second[y, x] = sv
+            c_minus[y, x] = volume[y, x, bk - 1] if bk > k_lo else bv
+            c_plus[y, x] = volume[y, x, bk + 1] if bk < k_hi - 1 else bv
+    return best_k, c_best, c_second, c_minus, c_plus
+
+
+@njit(cache=True, parallel=True)
+def select_right(volume, d_min):
+    """Winner for each right-image pixel, read diagonally from the left volume.
+
+    Right pixel ``xr`` matches left pixel ``xr + d``; -1 where no hypothesis is valid.
+    """
+    H, W, D = volume.shape
+    best = np.empty((H, W), np.int32)
+    for y in prange(H):
+        for xr in range(W):
+            bk = -1
+            bv = np.int64(1) << 40
+            for k in range(D):
+                x = xr + d_min + k
+                if x < 0 or x >= W:
+                    continue
+                v = np.int64(volume[y, x, k])
+                if v < bv:
+                    bv = v
+                    bk = k
+            best[y, xr] = bk
+    return best
+
+
+@njit(cache=True, parallel=True)
+def consistency_classes(best_left, best_right, d_min, n_disp, max_diff):
+    """Left-right check with occluded and mismatched pixels told apart.
+
+    A left pixel that fails the check is *mismatched* when some hypothesis maps
+    it to a right pixel whose own winner points back to it, and *occluded* when
+    none does (the right-image test of semi-global matching). Returns uint8
+    classes: 0 consistent, 1 occluded, 2 mismatch, 4 no valid hypothesis or the
+    winner at an end of the search range, and the right winner's disparity
+    offset ``|k_left - k_right|`` as float32 (inf where undefined).
+    """
+    H, W = best_left.shape
+    classes = np.zeros((H, W), np.uint8)
+    lr_diff = np.full((H, W), np.inf, np.float32)
+    for y in prange(H):
+        for x in range(W):
+            k = best_left[y, x]
+            if k < 0:
+                classes[y, x] = 4
+                continue
+            xr = x - (d_min + k)
+            kr = best_right[y, xr]
+            if kr >= 0:
+                lr_diff[y, x] = abs(k - kr)
+            if k == 0 or k == n_disp - 1:
+                classes[y, x] = 4
+                continue
+            if kr >= 0 and abs(k - kr) <= max_diff:
+                continue
+            cls = 1
+            for k2 in range(n_disp):
+                xr2 = x - (d_min + k2)
+                if xr2 < 0 or xr2 >= W:
+                    continue
+                kr2 = best_right[y, xr2]
+                if kr2 >= 0 and abs(kr2 - k2) <= max_diff:
+                    cls = 2
+                    break
+            classes[y, x] = cls
+    return classes, lr_diff
+
+
+@njit(cache=True, parallel=True)
+def grid_energy_terms(labels, cost, kind, weight, trunc, p1, p2):
+    """Unary and pairwise sums of the 4-connected grid energy for integer labels.
+
+    ``kind``: 0 Potts (``weight`` per label change), 1 truncated linear
+    (``weight * min(|a-b|, trunc)``), 2 the semi-global form (0, ``p1`` for a
+    step of one, ``p2`` beyond).
+    """
+    H, W = labels.shape
+    unary_rows = np.zeros(H, np.float64)
+    pair_rows = np.zeros(H, np.float64)
+    for y in prange(H):
+        u = 0.0
+        p = 0.0
+        for x in range(W):
+            a = labels[y, x]
+            u += cost[y, x, a]
+            for n in range(2):
+                if n == 0:
+                    if x + 1 >= W:
+                        continue
+                    b = labels[y, x + 1]
+                else:
+                    if y + 1 >= H:
+                        continue
+                    b = labels[y + 1, x]
+                diff = abs(a - b)
+                if kind == 0:
+                    p += weight if diff != 0 else 0.0
+                elif kind == 1:
+                    p += weight * min(diff, trunc)
+                else:
+                    if diff == 1:
+                        p += p1
+                    elif diff > 1:
+                        p += p2
+        unary_rows[y] = u
+        pair_rows[y] = p
+    return unary_rows.sum(), pair_rows.sum()

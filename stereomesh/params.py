@@ -1,0 +1,305 @@
+"""The one parameter schema: typed dataclasses with defaults, ranges and help.
+
+The CLI flags, the TOML config file (one table per section) and the editor
+plugin's properties are all generated from these classes, so no parameter is
+defined twice. Field names are unique across sections; a flag is the field
+name with ``-`` for ``_``.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import math
+import tomllib
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+from stereomesh.errors import InputError
+
+
+def param(default, help: str, *, min=None, max=None, choices=None):  # noqa: A002
+    """A schema field: default, help text and optional range or choices."""
+    return field(
+        default=default, metadata={"help": help, "min": min, "max": max, "choices": choices}
+    )
+
+
+def parse_disp_range(text: str) -> tuple[int, int] | None:
+    """Parse ``MIN:MAX`` (MIN inclusive, MAX exclusive; MIN may be negative) or ``auto``.
+
+    Examples
+    --------
+    >>> parse_disp_range("-16:112")
+    (-16, 112)
+    >>> parse_disp_range("auto") is None
+    True
+    """
+    text = str(text).strip()
+    if text == "auto":
+        return None
+    try:
+        lo, hi = (int(v) for v in text.split(":"))
+    except ValueError:
+        raise InputError(
+            f"--disp-range {text!r}: expected MIN:MAX with integers, e.g. 0:128, or 'auto'"
+        ) from None
+    if hi <= lo + 2:
+        raise InputError(f"--disp-range {text!r}: MAX must exceed MIN by at least 3")
+    return lo, hi
+
+
+@dataclass
+class DisparityParams:
+    """Matching cost, solver and refinement."""
+
+    method: str = param("sgm", "solver: semi-global matching or winner-takes-all",
+                        choices=("sgm", "wta"))
+    cost: str = param("census", "matching cost", choices=("census",))
+    census_width: int = param(7, "census window width, odd, pixels", min=3, max=9)
+    census_height: int = param(5, "census window height, odd, pixels", min=3, max=9)
+    disp_range: str = param(
+        "auto", "disparity search range MIN:MAX (MAX exclusive) or 'auto' from sparse matches"
+    )
+    p1: int = param(8, "SGM penalty for a disparity step of one (cost units)", min=0, max=500)
+    p2: int = param(96, "SGM penalty for larger steps (cost units)", min=1, max=1000)
+    p2_gradient_scale: float = param(
+        8.0, "intensity difference (grey levels) that halves P2; 0 keeps P2 fixed", min=0.0
+    )
+    paths: int = param(8, "number of SGM path directions", choices=(4, 8))
+    subpixel: str = param("parabola", "sub-pixel interpolation of the cost minimum",
+                          choices=("parabola", "equiangular", "none"))
+    lr_max_diff: int = param(1, "left-right check tolerance, pixels", min=0, max=16)
+    speckle_size: int = param(100, "largest blob removed as speckle, pixels; 0 disables",
+                              min=0)
+    speckle_range: float = param(2.0, "disparity step that separates speckle blobs, pixels",
+                                 min=0.0)
+    min_confidence: float = param(0.0, "reject disparities below this confidence",
+                                  min=0.0, max=1.0)
+
+
+@dataclass
+class CloudParams:
+    """Triangulation and point-cloud filtering."""
+
+    sigma_d: float = param(0.25, "disparity standard deviation for sigma_z, pixels", min=0.0)
+    depth_min: float = param(0.0, "nearest depth kept, metres", min=0.0)
+    depth_max: float = param(0.0, "farthest depth kept, metres; 0 means no limit", min=0.0)
+    cloud_min_confidence: float = param(0.05, "points below this confidence are dropped",
+                                        min=0.0, max=1.0)
+    outlier_neighbors: int = param(20, "neighbours for statistical outlier removal; 0 disables",
+                                   min=0)
+    outlier_std_ratio: float = param(2.0, "statistical outlier threshold, standard deviations",
+                                     min=0.1)
+    voxel_size: float = param(0.0, "voxel downsampling size, metres; 0 disables", min=0.0)
+
+
+@dataclass
+class SurfaceParams:
+    """Surface reconstruction."""
+
+    surface: str = param("grid", "depth-map grid mesh (open surfaces) or screened Poisson",
+                         choices=("grid", "poisson"))
+    max_depth_jump: float = param(0.03, "relative depth step treated as a discontinuity",
+                                  min=0.0, max=1.0)
+    grid_step: int = param(1, "pixel step of the grid mesh", min=1, max=16)
+    poisson_depth: int = param(9, "octree depth of screened Poisson", min=5, max=12)
+    density_quantile: float = param(0.02, "Poisson vertices below this density quantile are "
+                                    "trimmed", min=0.0, max=0.5)
+
+
+@dataclass
+class RepairParams:
+    """Mesh repair and hole filling."""
+
+    max_hole_edges: int = param(30, "fill holes with at most this many boundary edges; "
+                                "0 disables", min=0)
+    min_component_fraction: float = param(0.01, "drop components smaller than this share of "
+                                          "the largest", min=0.0, max=1.0)
+    smooth_iterations: int = param(0, "Taubin smoothing iterations", min=0, max=100)
+    target_faces: int = param(0, "decimate to this many faces; 0 keeps all", min=0)
+
+
+@dataclass
+class ExportParams:
+    """Outputs."""
+
+    format: str = param("ply", "comma list of extra exports: ply, obj, glb, las, e57")
+
+
+SECTIONS: dict[str, type] = {
+    "disparity": DisparityParams,
+    "cloud": CloudParams,
+    "surface": SurfaceParams,
+    "repair": RepairParams,
+    "export": ExportParams,
+}
+
+
+@dataclass
+class Params:
+    """All parameters of a run, one attribute per schema section.
+
+    Examples
+    --------
+    >>> p = Params().with_overrides({"p2": 120})
+    >>> p.disparity.p2
+    120
+    """
+
+    disparity: DisparityParams = field(default_factory=DisparityParams)
+    cloud: CloudParams = field(default_factory=CloudParams)
+    surface: SurfaceParams = field(default_factory=SurfaceParams)
+    repair: RepairParams = field(default_factory=RepairParams)
+    export: ExportParams = field(default_factory=ExportParams)
+
+    def to_dict(self) -> dict[str, dict[str, Any]]:
+        return dataclasses.asdict(self)
+
+    def with_overrides(self, overrides: dict[str, Any], source: str = "parameter") -> Params:
+        """A copy with flat ``{field_name: value}`` overrides applied and checked."""
+        sections = {name: dataclasses.replace(getattr(self, name)) for name in SECTIONS}
+        owners = field_owners()
+        for key, value in overrides.items():
+            key = key.replace("-", "_")
+            if key not in owners:
+                raise InputError(f"{source}: unknown parameter {key!r}")
+            setattr(sections[owners[key]], key, _coerce(owners[key], key, value, source))
+        out = Params(**sections)
+        out.validate(source)
+        return out
+
+    def validate(self, source: str = "parameter") -> None:
+        """Raise :class:`InputError` naming the first parameter out of its range."""
+        for section in SECTIONS:
+            obj = getattr(self, section)
+            for f in dataclasses.fields(obj):
+                value = getattr(obj, f.name)
+                meta = f.metadata
+                where = f"{source}: {f.name}={value!r}"
+                if meta["choices"] is not None and value not in meta["choices"]:
+                    raise InputError(f"{where} is not one of {list(meta['choices'])}")
+                if meta["min"] is not None and value < meta["min"]:
+                    raise InputError(f"{where} is below the minimum {meta['min']}")
+                if meta["max"] is not None and value > meta["max"]:
+                    raise InputError(f"{where} is above the maximum {meta['max']}")
+                if isinstance(value, float) and math.isnan(value):
+                    raise InputError(f"{where} is not a number")
+        d = self.disparity
+        parse_disp_range(d.disp_range)
+        if d.census_width % 2 == 0 or d.census_height % 2 == 0:
+            raise InputError(f"{source}: census window sides must be odd")
+        if d.p1 >= d.p2:
+            raise InputError(f"{source}: p1 ({d.p1}) must be below p2 ({d.p2})")
+        formats = [v.strip() for v in self.export.format.split(",") if v.strip()]
+        for fmt in formats:
+            if fmt not in ("ply", "obj", "glb", "las", "e57"):
+                raise InputError(f"{source}: format {fmt!r} is not one of ply, obj, glb, las, e57")
+
+
+def field_owners() -> dict[str, str]:
+    """Map each field name to its section."""
+    return {f.name: s for s, cls in SECTIONS.items() for f in dataclasses.fields(cls)}
+
+
+def _field(section: str, name: str) -> dataclasses.Field:
+    return next(f for f in dataclasses.fields(SECTIONS[section]) if f.name == name)
+
+
+def _coerce(section: str, name: str, value: Any, source: str) -> Any:
+    kind = _field(section, name).type
+    try:
+        if kind == "int":
+            if isinstance(value, float) and not value.is_integer():
+                raise ValueError
+            return int(value)
+        if kind == "float":
+            return float(value)
+        return str(value)
+    except (TypeError, ValueError):
+        raise InputError(f"{source}: {name}={value!r} is not a valid {kind}") from None
+
+
+def load_config(path: str | Path, base: Params | None = None) -> Params:
+    """Read a TOML config whose tables are the schema sections.
+
+    Examples
+    --------
+    A config file such as::
+
+        [disparity]
+        p2 = 120
+        disp_range = "0:128"
+
+        [surface]
+        surface = "poisson"
+    """
+    path = Path(path)
+    try:
+        data = tomllib.loads(path.read_text(encoding="utf-8"))
+    except FileNotFoundError:
+        raise InputError(f"{path}: config file not found") from None
+    except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
+        raise InputError(f"{path}: not valid TOML ({exc}); fix the file or drop --config") from None
+    overrides: dict[str, Any] = {}
+    for section, table in data.items():
+        if section not in SECTIONS or not isinstance(table, dict):
+            raise InputError(f"{path}: unknown table [{section}]; known: {', '.join(SECTIONS)}")
+        owners = field_owners()
+        for key, value in table.items():
+            if owners.get(key) != section:
+                raise InputError(f"{path}: [{section}] has no parameter {key!r}")
+            overrides[key] = value
+    return (base or Params()).with_overrides(overrides, source=str(path))
+
+
+def schema() -> list[dict[str, Any]]:
+    """The schema as plain data (for the plugin's properties and the docs)."""
+    rows = []
+    for section, cls in SECTIONS.items():
+        for f in dataclasses.fields(cls):
+            rows.append(
+                {
+                    "section": section,
+                    "name": f.name,
+                    "flag": "--" + f.name.replace("_", "-"),
+                    "type": f.type,
+                    "default": f.default,
+                    "min": f.metadata["min"],
+                    "max": f.metadata["max"],
+                    "choices": list(f.metadata["choices"]) if f.metadata["choices"] else None,
+                    "help": f.metadata["help"],
+                }
+            )
+    return rows
+
+
+def add_cli_arguments(parser, sections: tuple[str, ...] = tuple(SECTIONS)) -> None:
+    """Add one flag per schema field of ``sections`` to an argparse parser.
+
+    Flags default to ``None`` so that only what the user typed overrides the
+    config file and the schema defaults.
+    """
+    types = {"int": int, "float": float, "str": str}
+    for row in schema():
+        if row["section"] not in sections:
+            continue
+        parser.add_argument(
+            row["flag"],
+            dest=row["name"],
+            type=types[row["type"]],
+            default=None,
+            choices=row["choices"],
+            metavar=None if row["choices"] else row["name"].split("_")[-1].upper(),
+            help=f"{row['help']} (default: {row['default']})",
+        )
+
+
+def cli_overrides(namespace, sections: tuple[str, ...] = tuple(SECTIONS)) -> dict[str, Any]:
+    """The schema fields the user set on the command line."""
+    owners = field_owners()
+    return {
+        k: v
+        for k, v in vars(namespace).items()
+        if k in owners and owners[k] in sections and v is not None
+    }
