@@ -1,0 +1,406 @@
+"""Surfaces from depth: a grid mesh over the disparity map, or a Poisson surface."""
+
+from __future__ import annotations
+
+import numpy as np
+
+from stereomesh.geometry.data import PointCloud, TriMesh
+from stereomesh.geometry.triangulate import _check_maps, valid_disparity_mask
+from stereomesh.rectify import RectifiedRig
+
+# Faces per chunk when accumulating normals: bounds the temporaries to ~0.5 GB on
+# 12 MP maps while keeping numpy's per-call overhead negligible.
+_NORMAL_CHUNK = 4_000_000
+
+# Poisson output is cropped to the cloud's box grown by this share of its size on
+# each side: enough to keep the surface closing over the cloud's rim, little
+# enough to drop the balloon Poisson inflates beyond the data.
+_POISSON_BOX_MARGIN = 0.05
+
+# A Poisson vertex farther than this many point spacings from any input point is
+# not supported by a measurement, so it is flagged as filled.
+_POISSON_FILLED_SPACINGS = 2.0
+
+
+def vertex_normals(vertices: np.ndarray, faces: np.ndarray) -> np.ndarray:
+    """Area-weighted vertex normals of a triangle mesh.
+
+    Parameters
+    ----------
+    vertices : (V, 3) float array
+    faces : (F, 3) int array
+        Counter-clockwise winding seen from the side the normals should face.
+
+    Returns
+    -------
+    (V, 3) float32
+        Unit normals; vertices used by no face (or only by degenerate ones) get
+        the unit vector from the vertex toward the origin, i.e. toward the camera.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> v = np.array([[0, 0, 1], [0, 1, 1], [1, 0, 1]], float)
+    >>> vertex_normals(v, np.array([[0, 1, 2]]))[0]
+    array([ 0.,  0., -1.], dtype=float32)
+    """
+    vertices = np.asarray(vertices)
+    faces = np.asarray(faces)
+    if vertices.ndim != 2 or vertices.shape[1] != 3:
+        raise ValueError(f"vertices must have shape (V, 3), got {vertices.shape}")
+    if faces.ndim != 2 or faces.shape[1] != 3:
+        raise ValueError(f"faces must have shape (F, 3), got {faces.shape}")
+    nv = len(vertices)
+    # float32 is plenty for directions and halves the memory of the gathers.
+    v32 = vertices.astype(np.float32)
+    acc = np.zeros((nv, 3), np.float64)
+    for start in range(0, len(faces), _NORMAL_CHUNK):
+        f = faces[start : start + _NORMAL_CHUNK]
+        p0 = v32[f[:, 0]]
+        fn = np.cross(v32[f[:, 1]] - p0, v32[f[:, 2]] - p0)
+        del p0
+        flat = f.ravel()
+        for j in range(3):
+            acc[:, j] += np.bincount(flat, weights=np.repeat(fn[:, j], 3), minlength=nv)
+    length = np.linalg.norm(acc, axis=1)
+    bad = ~(length > 0)
+    acc[~bad] /= length[~bad, None]
+    if bad.any():
+        p = vertices[bad].astype(np.float64)
+        pl = np.linalg.norm(p, axis=1, keepdims=True)
+        acc[bad] = np.divide(-p, pl, out=np.tile([0.0, 0.0, -1.0], (len(p), 1)), where=pl > 0)
+    return acc.astype(np.float32)
+
+
+def depth_grid_mesh(
+    disparity: np.ndarray,
+    rig: RectifiedRig,
+    image: np.ndarray,
+    confidence: np.ndarray | None = None,
+    sigma_d: float | np.ndarray = 0.25,
+    max_depth_jump: float = 0.03,
+    step: int = 1,
+) -> TriMesh:
+    """Mesh the disparity map as a grid: one vertex per pixel, faces between neighbours.
+
+    Pixels are taken every ``step`` rows and columns. Each 2×2 block of valid
+    pixels gives two triangles split along its shorter 3-D diagonal; a block
+    with three valid pixels gives the one triangle they span. A triangle is
+    kept only if ``max(Z)/min(Z) − 1 <= max_depth_jump`` over its vertices:
+    larger jumps are depth discontinuities, and bridging them would invent
+    surface between a foreground object and the background.
+
+    Parameters
+    ----------
+    disparity : (H, W) float32 array
+        Left disparity in pixels, NaN where invalid.
+    rig : RectifiedRig
+    image : (H, W, 3) uint8 array
+        Rectified left image, RGB.
+    confidence : (H, W) float array, optional
+        Matching confidence in [0, 1]; 1 when omitted.
+    sigma_d : float or (H, W) float array
+        One-sigma disparity uncertainty, pixels.
+    max_depth_jump : float
+        Largest relative depth difference within a triangle (0.03 = 3 %).
+    step : int
+        Pixel stride of the grid (1 = every pixel).
+
+    Returns
+    -------
+    TriMesh
+        Vertices in ``rig.units`` (left camera frame); faces wound so that their
+        normals face the camera; vertex normals; colours, confidence and
+        ``sigma_z = Z²·σ_d/(f·B)`` from the vertex's pixel; ``filled`` all 0.
+        ``uv`` addresses the centre of the vertex's pixel in the left image in
+        the OpenGL convention: ``(u + 0.5) / W`` and ``1 − (v + 0.5) / H`` for
+        pixel column ``u`` and row ``v``, origin at the image's bottom-left.
+        Valid pixels used by no triangle are left out.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from stereomesh.rectify import RectifiedRig
+    >>> rig = RectifiedRig(focal_px=100.0, cx=1.0, cy=1.0, baseline=0.1)
+    >>> m = depth_grid_mesh(np.full((3, 3), 10.0, np.float32), rig, np.zeros((3, 3, 3), np.uint8))
+    >>> m.vertices.shape, m.faces.shape
+    ((9, 3), (8, 3))
+    """
+    disparity, image, confidence, sigma = _check_maps(disparity, image, confidence, sigma_d)
+    if int(step) != step or step < 1:
+        raise ValueError(f"step must be a positive integer, got {step}")
+    if not max_depth_jump >= 0:
+        raise ValueError(f"max_depth_jump must be >= 0, got {max_depth_jump}")
+    step = int(step)
+    height, width = disparity.shape
+    f, b = float(rig.focal_px), float(rig.baseline)
+
+    d = disparity[::step, ::step]
+    valid = valid_disparity_mask(d, rig)
+    gh, gw = d.shape
+    with np.errstate(invalid="ignore", divide="ignore"):
+        z = np.where(valid, (f * b) / (d.astype(np.float64) + rig.doffs), np.nan).astype(np.float32)
+    cols = (np.arange(gw, dtype=np.float32) * step - np.float32(rig.cx)) / np.float32(f)
+    rows = (np.arange(gh, dtype=np.float32) * step - np.float32(rig.cy)) / np.float32(f)
+    x = z * cols[None, :]
+    y = z * rows[:, None]
+
+    # Block corners: a top-left, b top-right, c bottom-left, e bottom-right.
+    def corner(arr, dr, dc):
+        return arr[dr : gh - 1 + dr, dc : gw - 1 + dc]
+
+    # Fresh 12-megapixel temporaries cost more in page faults than in arithmetic,
+    # so the block-grid work below runs in a few reused buffers.
+    bshape = (gh - 1, gw - 1)
+    e1 = [np.empty(bshape, np.float32) for _ in range(3)]
+    e2 = [np.empty(bshape, np.float32) for _ in range(3)]
+    tmp = np.empty(bshape, np.float32)
+    tmp2 = np.empty(bshape, np.float32)
+
+    xyz = (x, y, z)
+    del x, y
+
+    def diff_into(outs, grids, o_to, o_from):
+        for out, g in zip(outs, grids, strict=True):
+            np.subtract(corner(g, *o_to), corner(g, *o_from), out=out)
+
+    def norm2_into(out, vec, scratch):
+        np.multiply(vec[0], vec[0], out=out)
+        for comp in vec[1:]:
+            out += np.multiply(comp, comp, out=scratch)
+
+    va, vb, vc, ve = (corner(valid, *o) for o in ((0, 0), (0, 1), (1, 0), (1, 1)))
+    all4 = va & vb & vc & ve
+    with np.errstate(invalid="ignore"):
+        diff_into(e1, xyz, (1, 1), (0, 0))
+        diff_into(e2, xyz, (1, 0), (0, 1))
+        norm2_into(tmp, e1, tmp2)
+        norm2_into(e1[0], e2, tmp2)
+        use_ae = all4 & (tmp <= e1[0])
+    use_bc = all4 & ~use_ae
+
+    # In (col, row) pixel coordinates every triangle below has negative signed
+    # area; with y down and z forward that makes its 3-D normal face the camera,
+    # and projection preserves this for any surface in front of the camera.
+    tri_defs = (
+        (((0, 0), (1, 0), (1, 1)), (va & vc & ve) & (~vb | use_ae)),  # a c e
+        (((0, 0), (1, 1), (0, 1)), (va & ve & vb) & (~vc | use_ae)),  # a e b
+        (((0, 0), (1, 0), (0, 1)), (va & vc & vb) & (~ve | use_bc)),  # a c b
+        (((0, 1), (1, 0), (1, 1)), (vb & vc & ve) & (~va | use_bc)),  # b c e
+    )
+    del va, vb, vc, ve, all4, use_ae, use_bc
+    limit = np.float32(1.0 + max_depth_jump)
+    kept = []
+    used = np.zeros((gh, gw), bool)
+    # Area-weighted normals summed on the pixel grid by shifted slices: a scatter
+    # over 20 million faces would take several times longer.
+    acc = np.zeros((3, gh, gw), np.float32)
+    for offsets, mask in tri_defs:
+        z0, z1, z2 = (corner(xyz[2], *o) for o in offsets)
+        zmax, zmin = e1[0], e2[0]
+        with np.errstate(invalid="ignore"):
+            np.fmax(np.fmax(z0, z1, out=zmax), z2, out=zmax)
+            np.fmin(np.fmin(z0, z1, out=zmin), z2, out=zmin)
+            zmin *= limit
+            mask &= zmax <= zmin
+        kept.append((offsets, mask))
+        for o in offsets:
+            corner(used, *o)[...] |= mask
+        rejected = ~mask
+        with np.errstate(invalid="ignore"):
+            diff_into(e1, xyz, offsets[1], offsets[0])
+            diff_into(e2, xyz, offsets[2], offsets[0])
+            for k in range(3):
+                i, j = (k + 1) % 3, (k + 2) % 3
+                comp = np.multiply(e1[i], e2[j], out=tmp)
+                comp -= np.multiply(e1[j], e2[i], out=tmp2)
+                # Rejected triangles may touch NaN pixels: zero them before summing.
+                np.copyto(comp, 0, where=rejected)
+                for o in offsets:
+                    corner(acc[k], *o)[...] += comp
+        del rejected
+    del xyz, e1, e2, tmp, tmp2
+
+    # Vertex ids only for pixels some triangle uses, numbered in row-major order.
+    n_vert = int(used.sum())
+    if n_vert >= 2**31 - 1:
+        raise ValueError("too many vertices for int32 faces; use a larger step")
+    vid = np.full((gh, gw), -1, np.int32)
+    vid[used] = np.arange(n_vert, dtype=np.int32)
+    n_faces = sum(int(m.sum()) for _, m in kept)
+    faces = np.empty((n_faces, 3), np.int32)
+    start = 0
+    for offsets, mask in kept:
+        k = int(mask.sum())
+        for j, o in enumerate(offsets):
+            faces[start : start + k, j] = corner(vid, *o)[mask]
+        start += k
+    del kept, vid
+
+    normals = np.empty((n_vert, 3), np.float32)
+    for k in range(3):
+        normals[:, k] = acc[k][used]
+    del acc
+
+    # Boolean-mask gathers on the strided grid are much faster than (row, col)
+    # fancy indexing at this size.
+    def at_used(arr):
+        return arr[::step, ::step][used]
+
+    pr = np.broadcast_to(np.arange(0, height, step, dtype=np.float64)[:, None], used.shape)
+    pc = np.broadcast_to(np.arange(0, width, step, dtype=np.float64)[None, :], used.shape)
+    pr, pc = pr[used], pc[used]
+    verts = np.empty((n_vert, 3), np.float64)
+    # Positions in float64 from the disparity itself: the float32 grid only served
+    # the diagonal and jump tests.
+    zv = verts[:, 2]
+    np.divide(f * b, at_used(disparity).astype(np.float64) + rig.doffs, out=zv)
+    verts[:, 0] = (pc - rig.cx) * zv / f
+    verts[:, 1] = (pr - rig.cy) * zv / f
+    length = np.sqrt(np.einsum("ij,ij->i", normals, normals))
+    # Every kept vertex has a face, but only degenerate ones would leave no
+    # direction; those look at the camera like the rest of the surface.
+    flat = ~(length > 0)
+    normals /= np.where(flat, np.float32(1), length)[:, None]
+    if flat.any():
+        normals[flat] = -verts[flat] / np.linalg.norm(verts[flat], axis=1, keepdims=True)
+    sig = sigma if sigma.ndim == 0 else at_used(sigma)
+    sigma_z = (zv * zv * (sig / (f * b))).astype(np.float32)
+    conf = np.ones(n_vert, np.float32) if confidence is None else at_used(confidence)
+    uv = np.empty((n_vert, 2), np.float32)
+    uv[:, 0] = (pc + 0.5) / width
+    uv[:, 1] = 1.0 - (pr + 0.5) / height
+    colors = at_used(image)
+    del pr, pc
+    return TriMesh(
+        vertices=verts,
+        faces=faces,
+        colors=colors,
+        confidence=np.asarray(conf, np.float32),
+        sigma_z=sigma_z,
+        filled=np.zeros(n_vert, np.uint8),
+        normals=normals,
+        uv=uv,
+    )
+
+
+def _median_spacing(points: np.ndarray, sample: int = 100_000, seed: int = 0) -> float:
+    from scipy.spatial import cKDTree
+
+    tree = cKDTree(points)
+    rng = np.random.default_rng(seed)
+    probe = points if len(points) <= sample else points[rng.choice(len(points), sample, False)]
+    dist, _ = tree.query(probe, k=2)
+    d = dist[:, 1]
+    d = d[np.isfinite(d) & (d > 0)]
+    return float(np.median(d)) if d.size else 0.0
+
+
+def poisson_mesh(
+    cloud: PointCloud,
+    depth: int = 9,
+    density_quantile: float = 0.02,
+    scale: float = 1.1,
+) -> TriMesh:
+    """Watertight-then-trimmed surface by screened Poisson reconstruction (Open3D).
+
+    The surface is cut back in two ways, because Poisson closes every gap:
+    vertices whose Poisson density (octree support) is below the
+    ``density_quantile`` quantile are removed with their faces, then faces
+    with a vertex outside the cloud's bounding box, enlarged by 5 % of its size
+    on each side, are removed.
+
+    Parameters
+    ----------
+    cloud : PointCloud
+        Points with normals (see :func:`~stereomesh.geometry.filters.filter_cloud`).
+    depth : int
+        Octree depth; the finest cell is about ``extent / 2**depth``.
+    density_quantile : float
+        Share of lowest-density vertices removed, in [0, 1).
+    scale : float
+        Reconstruction cube diameter over the cloud's bounding-cube diameter.
+
+    Returns
+    -------
+    TriMesh
+        Vertices in the cloud's unit, colours interpolated by Open3D, normals
+        from the faces, ``confidence`` and ``sigma_z`` from the nearest input
+        point. Vertices farther than two median point spacings from every input
+        point have ``filled = 1`` and confidence 0. ``uv`` is None.
+
+    Raises
+    ------
+    ValueError
+        If the cloud has no normals or fewer than 4 points.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from stereomesh.geometry.filters import estimate_normals
+    >>> g = np.mgrid[0:40, 0:40].reshape(2, -1).T / 40.0
+    >>> pts = np.c_[g, np.ones(len(g))]
+    >>> pc = PointCloud(pts, np.full((len(g), 3), 200, np.uint8),
+    ...                 np.ones(len(g), np.float32), np.zeros(len(g), np.float32))
+    >>> m = poisson_mesh(estimate_normals(pc), depth=6)
+    >>> bool(abs(np.median(m.vertices[:, 2]) - 1.0) < 0.01)
+    True
+    """
+    import open3d as o3d
+    from scipy.spatial import cKDTree
+
+    if not isinstance(cloud, PointCloud):
+        raise TypeError(f"cloud must be a PointCloud, got {type(cloud).__name__}")
+    if cloud.normals is None:
+        raise ValueError("poisson_mesh needs oriented normals; run filter_cloud first")
+    if len(cloud) < 4:
+        raise ValueError(f"poisson_mesh needs at least 4 points, got {len(cloud)}")
+    if not 0.0 <= density_quantile < 1.0:
+        raise ValueError(f"density_quantile must be in [0, 1), got {density_quantile}")
+
+    pcd = o3d.geometry.PointCloud()
+    pcd.points = o3d.utility.Vector3dVector(cloud.points)
+    pcd.normals = o3d.utility.Vector3dVector(cloud.normals.astype(np.float64))
+    pcd.colors = o3d.utility.Vector3dVector(cloud.colors.astype(np.float64) / 255.0)
+    mesh, dens = o3d.geometry.TriangleMesh.create_from_point_cloud_poisson(
+        pcd, depth=int(depth), scale=float(scale)
+    )
+    verts = np.asarray(mesh.vertices, np.float64)
+    faces = np.asarray(mesh.triangles, np.int64)
+    colors = np.asarray(mesh.vertex_colors, np.float64)
+    dens = np.asarray(dens, np.float64)
+    del mesh
+
+    keep_v = np.ones(len(verts), bool)
+    if density_quantile > 0 and len(dens):
+        keep_v &= dens >= np.quantile(dens, density_quantile)
+    lo, hi = cloud.points.min(axis=0), cloud.points.max(axis=0)
+    margin = _POISSON_BOX_MARGIN * (hi - lo)
+    keep_v &= np.all((verts >= lo - margin) & (verts <= hi + margin), axis=1)
+    faces = faces[keep_v[faces].all(axis=1)]
+    used = np.zeros(len(verts), bool)
+    used[faces.ravel()] = True
+    remap = np.cumsum(used) - 1
+    verts, colors = verts[used], colors[used]
+    faces = remap[faces].astype(np.int32)
+
+    dist, nearest = cKDTree(cloud.points).query(verts, k=1)
+    conf = cloud.confidence[nearest].copy()
+    sigma = cloud.sigma_z[nearest]
+    spacing = _median_spacing(cloud.points)
+    filled = (dist > _POISSON_FILLED_SPACINGS * spacing).astype(np.uint8)
+    conf[filled == 1] = 0.0
+    if len(colors) != len(verts):
+        colors_u8 = cloud.colors[nearest]
+    else:
+        colors_u8 = np.clip(np.rint(colors * 255.0), 0, 255).astype(np.uint8)
+    return TriMesh(
+        vertices=verts,
+        faces=faces,
+        colors=colors_u8,
+        confidence=conf,
+        sigma_z=sigma,
+        filled=filled,
+        normals=vertex_normals(verts, faces),
+        uv=None,
+    )

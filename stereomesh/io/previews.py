@@ -1,0 +1,207 @@
+"""Preview images of the results, for the report and a quick look."""
+
+from __future__ import annotations
+
+import os
+from pathlib import Path
+
+import numpy as np
+
+_BACKGROUND = (255, 255, 255)
+# Vertices used to size the field of view; enough for a stable extent estimate.
+_FOV_SAMPLE = 200_000
+
+
+def _camera_view_angle(vertices: np.ndarray, focal: np.ndarray, aspect: float) -> float:
+    """Vertical view angle (degrees) from the origin that frames every vertex."""
+    forward = focal / np.linalg.norm(focal)
+    up = np.array([0.0, -1.0, 0.0])
+    up = up - forward * (up @ forward)
+    if np.linalg.norm(up) < 1e-9:
+        up = np.array([0.0, 0.0, 1.0]) - forward * forward[2]
+    up /= np.linalg.norm(up)
+    right = np.cross(forward, up)
+    v = vertices
+    if len(v) > _FOV_SAMPLE:
+        v = v[np.random.default_rng(0).choice(len(v), _FOV_SAMPLE, replace=False)]
+    depth = v @ forward
+    v = v[depth > 1e-9]
+    depth = depth[depth > 1e-9]
+    if len(v) == 0:
+        return 60.0
+    half_v = np.abs(v @ up) / depth
+    half_h = np.abs(v @ right) / depth / aspect
+    half = float(np.max(np.maximum(half_v, half_h)))
+    return float(np.clip(2.0 * np.degrees(np.arctan(half)) * 1.05, 5.0, 150.0))
+
+
+def render_mesh_png(
+    path: str | os.PathLike,
+    vertices: np.ndarray,
+    faces: np.ndarray,
+    colors: np.ndarray | None = None,
+    size: tuple[int, int] = (800, 600),
+) -> None:
+    """Render a triangle mesh as seen from the left camera and save it as PNG.
+
+    The camera sits at the origin looking at the centre of the mesh's bounding
+    box with image y down, as the left rectified camera sees the scene; the
+    view angle is widened just enough to frame every vertex. Rendering is
+    off-screen with pyvista (VTK), shaded, with vertex colours when given.
+
+    Parameters
+    ----------
+    path : str or path-like
+        PNG file to write, atomically.
+    vertices : (V, 3) float array
+        Left camera frame (x right, y down, z forward), any length unit.
+    faces : (F, 3) int array
+    colors : (V, 3) uint8 array, optional
+        RGB vertex colours; a uniform grey surface when omitted.
+    size : (int, int)
+        ``(width, height)`` of the image, pixels.
+
+    Raises
+    ------
+    ValueError
+        If the arrays have the wrong shapes or the mesh is empty.
+    RuntimeError
+        If pyvista cannot render here (no OpenGL/EGL/OSMesa context).
+
+    Examples
+    --------
+    >>> import numpy as np, tempfile, pathlib  # doctest: +SKIP
+    >>> v = np.array([[-1, -1, 5], [1, -1, 5], [0, 1, 5]], float)  # doctest: +SKIP
+    >>> render_mesh_png(pathlib.Path(tempfile.mkdtemp()) / "m.png", v,
+    ...                 np.array([[0, 2, 1]]))  # doctest: +SKIP
+    """
+    vertices = np.asarray(vertices, np.float64)
+    faces = np.asarray(faces)
+    if vertices.ndim != 2 or vertices.shape[1] != 3 or len(vertices) == 0:
+        raise ValueError(f"vertices must have shape (V, 3) with V > 0, got {vertices.shape}")
+    if faces.ndim != 2 or faces.shape[1] != 3 or len(faces) == 0:
+        raise ValueError(f"faces must have shape (F, 3) with F > 0, got {faces.shape}")
+    if colors is not None:
+        colors = np.asarray(colors)
+        if colors.shape != vertices.shape or colors.dtype != np.uint8:
+            raise ValueError(
+                f"colors must be {vertices.shape} uint8, got {colors.shape} {colors.dtype}"
+            )
+    width, height = (int(s) for s in size)
+    if width < 1 or height < 1:
+        raise ValueError(f"size must be positive, got {size}")
+
+    try:
+        import pyvista
+    except ImportError as exc:  # pragma: no cover - pyvista is a dependency
+        raise RuntimeError(f"mesh preview needs pyvista: {exc}") from exc
+
+    from PIL import Image
+
+    from stereomesh.io.atomic import atomic_path
+
+    pyvista.OFF_SCREEN = True
+    lo, hi = vertices.min(axis=0), vertices.max(axis=0)
+    focal = (lo + hi) / 2.0
+    if np.linalg.norm(focal) < 1e-12:
+        focal = np.array([0.0, 0.0, 1.0])
+    poly = pyvista.PolyData.from_regular_faces(vertices, faces.astype(np.int64))
+    plotter = None
+    try:
+        plotter = pyvista.Plotter(off_screen=True, window_size=(width, height))
+        plotter.set_background(_BACKGROUND)
+        if colors is not None:
+            poly.point_data["rgb"] = colors
+            plotter.add_mesh(poly, scalars="rgb", rgb=True, smooth_shading=True)
+        else:
+            plotter.add_mesh(poly, color=(180, 180, 180), smooth_shading=True)
+        cam = plotter.camera
+        cam.position = (0.0, 0.0, 0.0)
+        cam.focal_point = tuple(focal)
+        cam.up = (0.0, -1.0, 0.0)
+        cam.view_angle = _camera_view_angle(vertices, focal, width / height)
+        plotter.renderer.reset_camera_clipping_range()
+        image = plotter.screenshot(None, return_img=True)
+    except Exception as exc:
+        raise RuntimeError(
+            f"mesh preview could not be rendered (no usable OpenGL/EGL context?): "
+            f"{type(exc).__name__}: {exc}"
+        ) from exc
+    finally:
+        if plotter is not None:
+            plotter.close()
+    image = np.asarray(image)
+    if image.ndim != 3 or image.shape[:2] != (height, width):
+        raise RuntimeError(
+            f"mesh preview came back with shape {image.shape}, not {(height, width)}"
+        )
+    with atomic_path(path) as tmp:
+        Image.fromarray(np.ascontiguousarray(image[:, :, :3])).save(tmp, format="PNG")
+
+
+# --- image previews -------------------------------------------------------------------
+
+OCCLUSION_PREVIEW_COLOURS = np.array(
+    [
+        [205, 205, 200],  # 0 valid
+        [235, 130, 25],  # 1 occluded
+        [190, 40, 150],  # 2 mismatch
+        [50, 110, 215],  # 3 rejected by a filter
+        [25, 25, 25],  # 4 outside the range or overlap
+    ],
+    np.uint8,
+)
+"""RGB colour of each occlusion class in ``previews/occlusion_classes.png``."""
+
+
+def disparity_preview(disparity: np.ndarray) -> np.ndarray:
+    """Colour-mapped disparity (near is warm), black where NaN; (H, W, 3) uint8."""
+    import cv2
+
+    disparity = np.asarray(disparity, np.float32)
+    valid = np.isfinite(disparity)
+    out = np.zeros((*disparity.shape, 3), np.uint8)
+    if valid.any():
+        lo, hi = np.percentile(disparity[valid], [1, 99])
+        scaled = np.clip((disparity - lo) / max(hi - lo, 1e-6), 0, 1)
+        grey = np.where(valid, scaled * 255, 0).astype(np.uint8)
+        out = cv2.cvtColor(cv2.applyColorMap(grey, cv2.COLORMAP_TURBO), cv2.COLOR_BGR2RGB)
+        out[~valid] = 0
+    return out
+
+
+def rectified_pair_preview(left: np.ndarray, right: np.ndarray, lines: int = 16) -> np.ndarray:
+    """Left and right side by side with horizontal epipolar lines; (H, 2W, 3) uint8.
+
+    On a well rectified pair, a feature lies on the same line in both halves.
+    """
+    pair = np.concatenate([left, right], axis=1).copy()
+    h = pair.shape[0]
+    for i, y in enumerate(np.linspace(h / (lines + 1), h - h / (lines + 1), lines).astype(int)):
+        pair[y] = (0, 255, 0) if i % 2 == 0 else (255, 0, 255)
+    return pair
+
+
+def write_image_previews(
+    folder: Path,
+    left: np.ndarray,
+    right: np.ndarray,
+    disparity: np.ndarray,
+    confidence: np.ndarray,
+    classes: np.ndarray,
+) -> dict[str, Path]:
+    """Write the rectified pair, disparity, confidence and occlusion-class previews."""
+    from stereomesh.io.images import write_png
+
+    folder = Path(folder)
+    paths = {
+        "rectified_pair": folder / "rectified_pair.png",
+        "disparity": folder / "disparity.png",
+        "confidence": folder / "confidence.png",
+        "occlusion_classes": folder / "occlusion_classes.png",
+    }
+    write_png(paths["rectified_pair"], rectified_pair_preview(left, right))
+    write_png(paths["disparity"], disparity_preview(disparity))
+    write_png(paths["confidence"], (np.clip(confidence, 0, 1) * 255).astype(np.uint8))
+    write_png(paths["occlusion_classes"], OCCLUSION_PREVIEW_COLOURS[np.minimum(classes, 4)])
+    return paths

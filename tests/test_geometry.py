@@ -1,0 +1,441 @@
+"""Geometry stages: triangulation, cloud filters, surfaces and mesh repair."""
+
+import numpy as np
+import pytest
+
+from stereomesh.geometry.data import PointCloud, TriMesh
+from stereomesh.geometry.filters import estimate_normals, filter_cloud, voxel_average
+from stereomesh.geometry.repair import count_boundary_loops, repair_mesh, split_at_centroids
+from stereomesh.geometry.surface import depth_grid_mesh, poisson_mesh, vertex_normals
+from stereomesh.geometry.triangulate import triangulate
+from stereomesh.rectify import RectifiedRig
+
+RIG = RectifiedRig(focal_px=500.0, cx=31.7, cy=22.4, baseline=0.12, doffs=3.5, image_size=(64, 48))
+
+
+def _image(h, w, seed=0):
+    return np.random.default_rng(seed).integers(0, 256, (h, w, 3), dtype=np.uint8)
+
+
+def _cloud(points, seed=0, **kw):
+    n = len(points)
+    rng = np.random.default_rng(seed)
+    return PointCloud(
+        points,
+        rng.integers(0, 256, (n, 3), dtype=np.uint8),
+        kw.pop("confidence", np.ones(n, np.float32)),
+        kw.pop("sigma_z", np.full(n, 0.001, np.float32)),
+        **kw,
+    )
+
+
+def _face_normals(vertices, faces):
+    a, b, c = (vertices[faces[:, k]] for k in range(3))
+    return np.cross(b - a, c - a)
+
+
+# ---------------------------------------------------------------- containers
+
+
+def test_pointcloud_subset_keeps_attributes_aligned():
+    pc = _cloud(np.arange(12.0).reshape(4, 3), pixels=np.array([[0, 0], [1, 0], [2, 0], [3, 0]]))
+    sub = pc.subset(np.array([False, True, False, True]))
+    assert len(sub) == 2
+    np.testing.assert_array_equal(sub.points, pc.points[[1, 3]])
+    np.testing.assert_array_equal(sub.colors, pc.colors[[1, 3]])
+    np.testing.assert_array_equal(sub.pixels, [[1, 0], [3, 0]])
+    assert sub.pixels.dtype == np.int32
+    np.testing.assert_array_equal(pc.subset(np.array([2])).points, pc.points[[2]])
+
+
+def test_containers_refuse_wrong_dtypes_and_shapes():
+    with pytest.raises(TypeError):
+        PointCloud(np.zeros((2, 3)), np.zeros((2, 3)), np.ones(2), np.ones(2))
+    with pytest.raises(ValueError):
+        PointCloud(np.zeros((2, 3)), np.zeros((3, 3), np.uint8), np.ones(2), np.ones(2))
+    with pytest.raises(ValueError):
+        TriMesh(
+            np.zeros((3, 3)),
+            np.array([[0, 1, 3]]),
+            np.zeros((3, 3), np.uint8),
+            np.ones(3),
+            np.ones(3),
+            np.zeros(3, np.uint8),
+        )
+
+
+# ---------------------------------------------------------------- triangulation
+
+
+def test_triangulate_matches_opencv_reprojection():
+    import cv2
+
+    h, w = 48, 64
+    rng = np.random.default_rng(1)
+    disp = rng.uniform(5.0, 60.0, (h, w)).astype(np.float32)
+    disp[rng.random((h, w)) < 0.1] = np.nan
+    pc = triangulate(disp, RIG, _image(h, w))
+    # reference: OpenCV cv2.reprojectImageTo3D with the rig's Q (OpenCV's convention,
+    # right camera at +baseline, so Q[3, 2] = 1/B and W = (d + doffs)/B).
+    ref = cv2.reprojectImageTo3D(np.nan_to_num(disp, nan=0.0), RIG.Q.astype(np.float64))
+    cols, rows = pc.pixels[:, 0], pc.pixels[:, 1]
+    expected = ref[rows, cols].astype(np.float64)
+    scale = np.linalg.norm(expected, axis=1, keepdims=True)
+    assert np.all(np.abs(pc.points - expected) <= 1e-6 * scale)
+    assert len(pc) == int(np.isfinite(disp).sum())
+    np.testing.assert_array_equal(pc.colors, _image(h, w)[rows, cols])
+
+
+def test_triangulate_sigma_z_is_derivative_of_depth():
+    disp = np.array([[4.0, 10.0, 40.0]], np.float32)
+    sigma_d = 0.3
+    pc = triangulate(disp, RIG, _image(1, 3), sigma_d=sigma_d)
+    h = 1e-4
+    d = disp[0].astype(np.float64)
+    # formula: central finite difference of Z(d) = f·B/(d + doffs)
+    dz = (RIG.depth_from_disparity(d - h) - RIG.depth_from_disparity(d + h)) / (2 * h)
+    np.testing.assert_allclose(pc.sigma_z, dz * sigma_d, rtol=1e-5)
+
+
+def test_triangulate_per_pixel_sigma_and_confidence():
+    disp = np.full((2, 2), 10.0, np.float32)
+    sig = np.array([[0.1, 0.2], [0.3, 0.4]])
+    conf = np.array([[0.5, 0.6], [0.7, 0.8]])
+    pc = triangulate(disp, RIG, _image(2, 2), confidence=conf, sigma_d=sig)
+    z = RIG.focal_px * RIG.baseline / (10.0 + RIG.doffs)
+    np.testing.assert_allclose(pc.sigma_z, z * z * sig.ravel() / (RIG.focal_px * RIG.baseline))
+    np.testing.assert_allclose(pc.confidence, conf.ravel(), rtol=1e-6)
+
+
+def test_triangulate_drops_points_behind_camera_and_checks_shapes():
+    disp = np.array([[-RIG.doffs, -10.0, 1.0]], np.float32)
+    assert len(triangulate(disp, RIG, _image(1, 3))) == 1
+    with pytest.raises(ValueError):
+        triangulate(disp, RIG, _image(2, 3))
+    with pytest.raises(ValueError):
+        triangulate(disp, RIG, _image(1, 3), sigma_d=np.ones((2, 2)))
+
+
+# ---------------------------------------------------------------- filters
+
+
+def _noisy_plane_with_outliers(seed=0):
+    rng = np.random.default_rng(seed)
+    g = rng.uniform(-0.5, 0.5, (3000, 2))
+    z = 2.0 + 0.3 * g[:, 0] + rng.normal(0, 0.002, len(g))
+    plane = np.c_[g, z]
+    outliers = np.c_[rng.uniform(-0.5, 0.5, (30, 2)), rng.uniform(0.8, 1.6, 30)]
+    return plane, outliers
+
+
+def test_filter_cloud_removes_planted_outliers_and_orients_normals():
+    plane, outliers = _noisy_plane_with_outliers()
+    pts = np.r_[plane, outliers]
+    n = len(pts)
+    # Encode each point's index in its confidence to check alignment afterwards.
+    conf = (np.arange(n) / n).astype(np.float32)
+    pixels = np.stack([np.arange(n), np.zeros(n)], 1).astype(np.int32)
+    pc = _cloud(pts, confidence=conf, pixels=pixels)
+    out, counts = filter_cloud(pc, statistical_neighbors=20, statistical_std_ratio=2.0)
+    assert counts["input"] == n
+    assert set(counts) == {
+        "input",
+        "after_depth_range",
+        "after_confidence",
+        "after_statistical",
+        "after_radius",
+        "after_voxel",
+    }
+    kept = out.pixels[:, 0]
+    assert not np.any(kept >= len(plane)), "a planted outlier survived"
+    assert len(out) > 0.9 * len(plane)
+    np.testing.assert_array_equal(out.points, pts[kept])
+    np.testing.assert_allclose(out.confidence, conf[kept])
+    np.testing.assert_array_equal(out.colors, pc.colors[kept])
+    assert np.all(np.einsum("ij,ij->i", out.normals, -out.points) > 0)
+    np.testing.assert_allclose(np.linalg.norm(out.normals, axis=1), 1.0, atol=1e-5)
+
+
+def test_filter_cloud_depth_confidence_radius_and_voxel_steps():
+    plane, outliers = _noisy_plane_with_outliers(1)
+    pts = np.r_[plane, outliers]
+    conf = np.where(np.arange(len(pts)) % 10 == 0, 0.1, 0.9).astype(np.float32)
+    pc = _cloud(pts, confidence=conf)
+    out, counts = filter_cloud(
+        pc,
+        depth_range=(1.7, 3.0),
+        min_confidence=0.5,
+        statistical_neighbors=0,
+        radius=0.05,
+        radius_min_points=5,
+        voxel_size=0.05,
+    )
+    z = pts[:, 2]
+    in_range = (z >= 1.7) & (z <= 3.0)
+    assert counts["after_depth_range"] == int(in_range.sum())
+    assert counts["after_confidence"] == int((in_range & (conf >= 0.5)).sum())
+    assert counts["after_statistical"] == counts["after_confidence"]
+    assert counts["after_radius"] <= counts["after_statistical"]
+    assert counts["after_voxel"] == len(out) < counts["after_radius"]
+    assert out.points[:, 2].min() >= 1.7
+
+
+def test_voxel_average_averages_attributes():
+    pts = np.array([[0.01, 0.01, 1.01], [0.03, 0.01, 1.01], [0.5, 0.5, 1.5]])
+    pc = PointCloud(
+        pts,
+        np.array([[0, 100, 200], [10, 110, 201], [7, 7, 7]], np.uint8),
+        np.array([0.2, 0.4, 1.0], np.float32),
+        np.array([0.01, 0.03, 0.05], np.float32),
+        pixels=np.array([[0, 0], [1, 0], [5, 5]], np.int32),
+    )
+    out = voxel_average(pc, 0.1)
+    assert len(out) == 2
+    np.testing.assert_allclose(out.points[0], [0.02, 0.01, 1.01])
+    np.testing.assert_array_equal(out.colors[0], [5, 105, 200])  # 200.5 rounds to even
+    np.testing.assert_allclose(out.confidence[0], 0.3, rtol=1e-6)
+    np.testing.assert_allclose(out.sigma_z[0], 0.02, rtol=1e-6)
+    np.testing.assert_array_equal(out.points[1], pts[2])
+    assert out.pixels[1].tolist() == [5, 5]
+
+
+def test_estimate_normals_on_tilted_plane():
+    g = np.mgrid[0:20, 0:20].reshape(2, -1).T * 0.02
+    pts = np.c_[g, 1.0 + 0.5 * g[:, 0]]
+    pc = estimate_normals(_cloud(pts), radius=0.1)
+    expected = np.array([0.5, 0.0, -1.0]) / np.linalg.norm([0.5, 0.0, -1.0])
+    np.testing.assert_allclose(pc.normals, np.tile(expected, (len(pts), 1)), atol=1e-4)
+
+
+# ---------------------------------------------------------------- grid mesh
+
+
+def _plane_disparity(h, w, rig, tilt=0.0):
+    rows, cols = np.mgrid[0:h, 0:w]
+    return (20.0 + tilt * cols + 0.0 * rows).astype(np.float32)
+
+
+def test_depth_grid_mesh_plane_counts_positions_and_winding():
+    h, w = 12, 16
+    disp = _plane_disparity(h, w, RIG, tilt=0.3)
+    img = _image(h, w)
+    mesh = depth_grid_mesh(disp, RIG, img, max_depth_jump=0.05)
+    assert mesh.faces.dtype == np.int32
+    assert len(mesh.vertices) == h * w
+    assert len(mesh.faces) == 2 * (h - 1) * (w - 1)
+    # Same points as triangulation, in the same (row-major) order.
+    pc = triangulate(disp, RIG, img)
+    np.testing.assert_allclose(mesh.vertices, pc.points, rtol=1e-12)
+    np.testing.assert_array_equal(mesh.colors, pc.colors)
+    fn = _face_normals(mesh.vertices, mesh.faces)
+    centroid = mesh.vertices[mesh.faces].mean(axis=1)
+    assert np.all(np.einsum("ij,ij->i", fn, centroid) < 0), "a face looks away from the camera"
+    assert np.all(np.einsum("ij,ij->i", mesh.normals, mesh.vertices) < 0)
+    np.testing.assert_allclose(mesh.normals, vertex_normals(mesh.vertices, mesh.faces), atol=1e-5)
+    assert mesh.filled.sum() == 0
+
+
+def test_depth_grid_mesh_uv_convention():
+    h, w = 4, 5
+    mesh = depth_grid_mesh(np.full((h, w), 10.0, np.float32), RIG, _image(h, w))
+    # pixel (col 0, row 0) is the top-left texel centre; OpenGL's v axis points up
+    np.testing.assert_allclose(mesh.uv[0], [0.5 / w, 1 - 0.5 / h])
+    np.testing.assert_allclose(mesh.uv[-1], [(w - 0.5) / w, 1 - (h - 0.5) / h])
+
+
+def test_depth_grid_mesh_cuts_depth_discontinuities():
+    h, w = 10, 10
+    disp = np.full((h, w), 20.0, np.float32)
+    disp[:, 5:] = 40.0  # foreground half at half the depth
+    mesh = depth_grid_mesh(disp, RIG, _image(h, w), max_depth_jump=0.03)
+    z = mesh.vertices[mesh.faces][:, :, 2]
+    assert np.all(z.max(axis=1) / z.min(axis=1) - 1 <= 0.03)
+    assert len(mesh.faces) == 2 * (h - 1) * (4 + 4)
+    # A gentle slope of 1 % per pixel is kept whole.
+    slope = (20.0 * (1 + 0.002 * np.arange(w)))[None, :].repeat(h, 0).astype(np.float32)
+    assert len(depth_grid_mesh(slope, RIG, _image(h, w)).faces) == 2 * (h - 1) * (w - 1)
+
+
+def _edges(faces):
+    e = np.sort(faces[:, [0, 1, 1, 2, 2, 0]].reshape(-1, 2), axis=1)
+    return {tuple(x) for x in e.tolist()}
+
+
+def test_depth_grid_mesh_splits_along_shorter_diagonal():
+    disp = np.full((2, 2), 20.0, np.float32)
+    disp[1, 1] = 20.4  # bottom-right corner nearer: the a-e diagonal is longer in 3-D
+    rig = RectifiedRig(focal_px=500.0, cx=0.5, cy=0.5, baseline=0.12)
+    edges = _edges(depth_grid_mesh(disp, rig, _image(2, 2), max_depth_jump=0.1).faces)
+    assert (1, 2) in edges and (0, 3) not in edges
+    disp[1, 1] = 20.0
+    disp[0, 1] = 19.6  # top-right corner off the plane instead: now b-c is the longer one
+    edges = _edges(depth_grid_mesh(disp, rig, _image(2, 2), max_depth_jump=0.1).faces)
+    assert (0, 3) in edges and (1, 2) not in edges
+
+
+def test_depth_grid_mesh_invalid_pixels_and_step():
+    disp = np.full((3, 3), 20.0, np.float32)
+    disp[0, 0] = np.nan
+    mesh = depth_grid_mesh(disp, RIG, _image(3, 3))
+    # 3 full blocks give 2 triangles each, the block missing a corner gives 1.
+    assert len(mesh.faces) == 7 and len(mesh.vertices) == 8
+    big = np.full((9, 9), 20.0, np.float32)
+    coarse = depth_grid_mesh(big, RIG, _image(9, 9), step=4)
+    assert len(coarse.vertices) == 9 and len(coarse.faces) == 8
+    np.testing.assert_allclose(coarse.uv[1, 0], 4.5 / 9)
+    with pytest.raises(ValueError):
+        depth_grid_mesh(big, RIG, _image(9, 9), step=0)
+
+
+# ---------------------------------------------------------------- Poisson
+
+
+def test_poisson_mesh_reconstructs_plane_near_the_samples():
+    rng = np.random.default_rng(0)
+    g = rng.uniform(-0.5, 0.5, (4000, 2))
+    pts = np.c_[g, 2.0 + 0.2 * g[:, 1]]
+    conf = rng.uniform(0.5, 1.0, len(pts)).astype(np.float32)
+    cloud = estimate_normals(_cloud(pts, confidence=conf))
+    mesh = poisson_mesh(cloud, depth=6)
+    assert len(mesh.faces) > 100
+    residual = mesh.vertices[:, 2] - (2.0 + 0.2 * mesh.vertices[:, 1])
+    assert np.median(np.abs(residual)) < 0.01
+    lo, hi = pts.min(0), pts.max(0)
+    margin = 0.05 * (hi - lo) + 1e-9
+    assert np.all(mesh.vertices >= lo - margin) and np.all(mesh.vertices <= hi + margin)
+    measured = mesh.filled == 0
+    assert measured.mean() > 0.5
+    assert np.all(mesh.confidence[measured] >= 0.5)
+    assert np.all(mesh.confidence[~measured] == 0)
+    # The surface faces the camera, as the cloud's normals did.
+    fn = _face_normals(mesh.vertices, mesh.faces)
+    assert np.mean(fn[:, 2] < 0) > 0.95
+
+
+def test_poisson_mesh_needs_normals():
+    with pytest.raises(ValueError, match="normals"):
+        poisson_mesh(_cloud(np.random.default_rng(0).random((50, 3))))
+
+
+# ---------------------------------------------------------------- repair
+
+
+def _grid_mesh(n, holes, spacing=0.01, seed=0):
+    """n×n vertex grid at z = 1 without the cells in ``holes`` (r0, r1, c0, c1)."""
+    xs, ys = np.meshgrid(np.arange(n, dtype=float), np.arange(n, dtype=float))
+    verts = np.c_[xs.ravel() * spacing, ys.ravel() * spacing, np.ones(n * n)]
+    faces = []
+    for r in range(n - 1):
+        for c in range(n - 1):
+            if any(r0 <= r < r1 and c0 <= c < c1 for r0, r1, c0, c1 in holes):
+                continue
+            a = r * n + c
+            faces += [[a, a + n, a + n + 1], [a, a + n + 1, a + 1]]
+    return verts, np.array(faces)
+
+
+def _as_mesh(verts, faces, seed=0):
+    rng = np.random.default_rng(seed)
+    n = len(verts)
+    return TriMesh(
+        verts,
+        faces,
+        rng.integers(0, 256, (n, 3), dtype=np.uint8),
+        rng.uniform(0.5, 1.0, n).astype(np.float32),
+        rng.uniform(0.001, 0.002, n).astype(np.float32),
+        np.zeros(n, np.uint8),
+    )
+
+
+def _trimesh_loops(verts, faces):
+    import trimesh
+
+    # reference: trimesh Trimesh.outline(), one path entity per closed boundary loop
+    return len(trimesh.Trimesh(verts, faces, process=False).outline().entities)
+
+
+def test_repair_closes_small_hole_keeps_large_hole_and_drops_fragment():
+    verts, faces = _grid_mesh(30, [(5, 8, 5, 8), (14, 25, 12, 25)])
+    off = len(verts)
+    verts = np.r_[verts, [[0.5, 0.5, 1.2], [0.51, 0.5, 1.2], [0.5, 0.51, 1.2]]]
+    faces = np.r_[faces, [[off, off + 2, off + 1]]]
+    mesh = _as_mesh(verts, faces)
+    assert count_boundary_loops(mesh.faces) == _trimesh_loops(verts, faces) == 4
+
+    out, fig = repair_mesh(mesh, max_hole_edges=30, min_component_fraction=0.01)
+    assert fig["boundary_loops_before"] == 4
+    assert fig["components_removed"] == 1
+    assert fig["holes_filled"] == 1
+    assert fig["boundary_loops_after"] == 2  # the rim and the large hole
+    assert _trimesh_loops(out.vertices, out.faces) == 2
+    assert fig["faces_after"] == len(out.faces) and fig["vertices_after"] == len(out.vertices)
+
+    filled = out.filled == 1
+    assert filled.sum() == fig["filled_vertices"] > 0
+    assert np.all(out.confidence[filled] == 0)
+    # The invented vertices lie inside the small hole, none in the large one.
+    fv = out.vertices[filled]
+    assert np.all((fv[:, 0] > 0.05) & (fv[:, 0] < 0.08) & (fv[:, 1] > 0.05) & (fv[:, 1] < 0.08))
+    # Measured vertices keep position, colour, confidence and sigma exactly.
+    from scipy.spatial import cKDTree
+
+    dist, src = cKDTree(verts).query(out.vertices[~filled])
+    assert dist.max() == 0
+    np.testing.assert_array_equal(out.colors[~filled], mesh.colors[src])
+    np.testing.assert_array_equal(out.confidence[~filled], mesh.confidence[src])
+    np.testing.assert_array_equal(out.sigma_z[~filled], mesh.sigma_z[src])
+    assert np.all(out.vertices[:, 2] == 1.0)
+    assert np.all(out.normals[:, 2] < -0.99)  # winding kept toward the camera
+
+
+def test_repair_never_caps_the_rim_of_a_small_open_surface():
+    verts, faces = _grid_mesh(4, [])  # rim of 12 edges, below max_hole_edges
+    out, fig = repair_mesh(_as_mesh(verts, faces), max_hole_edges=30)
+    assert fig["holes_filled"] == 0 and fig["boundary_loops_after"] == 1
+    assert len(out.faces) == len(faces)
+
+
+def test_repair_removes_duplicates_and_counts_nonmanifold():
+    verts, faces = _grid_mesh(6, [])
+    # A duplicate face, and a fin: a third face on an interior edge.
+    fin = len(verts)
+    verts = np.r_[verts, [[0.02, 0.02, 0.9]]]
+    a, b = faces[24][0], faces[24][1]  # left edge of cell (2, 2), shared with (2, 1)
+    faces = np.r_[faces, faces[:1], [[a, b, fin]]]
+    out, fig = repair_mesh(_as_mesh(verts, faces), min_component_fraction=0.0)
+    assert fig["nonmanifold_fixed"] >= 1
+    _, counts = np.unique(np.sort(out.faces, axis=1), axis=0, return_counts=True)
+    assert counts.max() == 1
+    edges = np.sort(out.faces[:, [0, 1, 1, 2, 2, 0]].reshape(-1, 2), axis=1)
+    _, uses = np.unique(edges, axis=0, return_counts=True)
+    assert uses.max() <= 2, "a non-manifold edge survived"
+
+
+def test_repair_smoothing_and_decimation_keep_attributes_consistent():
+    verts, faces = _grid_mesh(25, [(10, 12, 10, 12)])
+    rng = np.random.default_rng(3)
+    verts = verts + np.c_[np.zeros((len(verts), 2)), rng.normal(0, 0.001, len(verts))]
+    mesh = _as_mesh(verts, faces)
+    out, fig = repair_mesh(mesh, smooth_iterations=5, target_faces=300)
+    assert len(out.faces) <= 330
+    assert out.colors.shape == (len(out.vertices), 3)
+    assert np.std(out.vertices[:, 2]) < np.std(verts[:, 2])
+    assert fig["boundary_loops_after"] == count_boundary_loops(out.faces, len(out.vertices))
+
+
+def test_count_boundary_loops_matches_trimesh_on_random_holes():
+    rng = np.random.default_rng(5)
+    holes = []
+    for _ in range(6):
+        r, c = rng.integers(2, 36, 2)
+        holes.append((r, r + 2, c, c + 2))
+    verts, faces = _grid_mesh(40, holes)
+    assert count_boundary_loops(faces, len(verts)) == _trimesh_loops(verts, faces)
+
+
+def test_split_at_centroids_keeps_orientation():
+    verts, faces = _grid_mesh(3, [])
+    v, f = split_at_centroids(verts, faces, np.array([0, 3]))
+    assert len(v) == len(verts) + 2 and len(f) == len(faces) + 4
+    assert np.all(_face_normals(v, f)[:, 2] < 0)
+    assert count_boundary_loops(f) == 1
