@@ -101,3 +101,19 @@ def test_bad_config_is_exit_code_2(tmp_path):
     code, _, stderr = run_cli("run", DEMO / "left.png", DEMO / "right.png", "--calib",
                               DEMO / "calib.json", "--out", tmp_path, "--config", cfg)
     assert code == 2 and "c.toml" in stderr and "no_such" in stderr
+
+
+def test_run_on_motorcycle_writes_every_output(motorcycle, tmp_path):
+    # scikit-image's Middlebury 2014 pair with the nominal calibration of the fixture.
+    d = motorcycle["dir"]
+    out = tmp_path / "run"
+    code, stdout, stderr = run_cli("run", d / "left.png", d / "right.png", "--calib",
+                                   d / "calib.json", "--out", out, "--disp-range", "0:80")
+    assert code == 0, stderr
+    assert len(stdout.strip().splitlines()) == 1 and "mesh.ply" in stdout
+    for name in ("mesh.ply", "cloud.ply", "disparity.pfm", "confidence.pfm", "occlusion.png",
+                 "report.json"):
+        assert (out / name).is_file(), name
+    assert any((out / "previews").glob("*.png"))
+    report = json.loads((out / "report.json").read_text())
+    assert report["status"] == "ok" and report["stages"]["repair"]["faces_after"] > 1000

@@ -62,8 +62,16 @@ _PLY_TYPES = {
 _NAMES_OUT = {"f4": "float", "u1": "uchar", "i4": "int"}
 
 
+# Files travel without their report, so the header carries the units and the caution.
+_CAUTION_COMMENTS = (
+    "comment units: metres (unscaled if the report says so); sigma_z: 1-sigma depth uncertainty",
+    "comment stereo-derived geometry is an estimate; for structural, legal or survey use",
+    "comment defer to licensed surveyors and local codes",
+)
+
+
 def _header(n_vertices: int, n_faces: int | None, comment: str) -> bytes:
-    lines = ["ply", "format binary_little_endian 1.0", f"comment {comment}"]
+    lines = ["ply", "format binary_little_endian 1.0", f"comment {comment}", *_CAUTION_COMMENTS]
     lines.append(f"element vertex {n_vertices}")
     for name in VERTEX_DTYPE.names:
         lines.append(f"property {_NAMES_OUT[VERTEX_DTYPE[name].base.str[1:]]} {name}")

@@ -106,6 +106,7 @@ def compute_disparity(
     from stereomesh.matching import _kernels
     from stereomesh.matching.confidence import confidence_map
     from stereomesh.matching.costs import COST_FUNCTIONS
+    from stereomesh.matching.energy import StepPenalty, grid_energy
     from stereomesh.matching.refine import speckle_mask, subpixel_offset
     from stereomesh.matching.sgm import aggregate_costs
 
@@ -150,7 +151,6 @@ def compute_disparity(
         volume = cost
     else:
         raise ValueError(f"unknown method {params.method!r}")
-    del cost
     timings["solver"] = time.perf_counter() - t
     report("refine", 0.7)
 
@@ -158,6 +158,11 @@ def compute_disparity(
     best_k, c1, c2, cm, cp = _kernels.select_left(volume, d_min)
     best_right = _kernels.select_right(volume, d_min)
     del volume
+    labels = np.where(best_k >= 0, best_k, 0).astype(np.int32)
+    # One energy for every solver (SGM's step penalty on the 4-connected grid),
+    # so that results of different solvers can be compared in the report.
+    energy = grid_energy(labels, cost, StepPenalty(params.p1, params.p2))
+    del cost
     classes, lr_diff = _kernels.consistency_classes(
         best_k, best_right, d_min, n_disp, params.lr_max_diff
     )
@@ -186,7 +191,8 @@ def compute_disparity(
         outside_fraction=float((classes == 4).mean()),
         confident_fraction=float((confidence >= 0.5).sum() / n),
         speckle_pixels=int(speckles.sum()),
+        energy=energy,
+        energy_pairwise_term={"kind": "step", "p1": params.p1, "p2": params.p2},
         step_seconds=timings,
     )
-    labels = np.where(best_k >= 0, best_k, 0).astype(np.int32)
     return DisparityResult(disparity, confidence, classes, labels, d_min, n_disp, figures)
