@@ -41,6 +41,16 @@ def test_demo_disparity_bad2_on_non_occluded(demo_run):
     assert density >= 0.8, density
 
 
+def test_demo_occluded_class_against_truth(demo_run):
+    # Ground-truth occlusion from the renderer (1 = hidden by a nearer surface);
+    # goal of the disparity issue: precision and recall of class 1 >= 0.8.
+    out, _ = demo_run
+    predicted = np.asarray(Image.open(out / "occlusion.png")) == 1
+    truth = np.asarray(Image.open(DEMO / "gt_occlusion.png")) == 1
+    hit = (predicted & truth).sum()
+    assert hit / predicted.sum() >= 0.8 and hit / truth.sum() >= 0.8
+
+
 def covisible(points, occlusion, calib):
     """Points whose left-image pixel the right camera also sees (ground-truth class 0)."""
     u = np.rint(calib["focal_px"] * points[:, 0] / points[:, 2] + calib["cx"]).astype(int)

@@ -350,3 +350,60 @@ def grid_energy_terms(labels, cost, kind, weight, trunc, p1, p2):
         unary_rows[y] = u
         pair_rows[y] = p
     return unary_rows.sum(), pair_rows.sum()
+
+
+@njit(cache=True, parallel=True)
+def mark_left_border(classes, disparity):
+    """Re-label failed pixels that map outside the right image as class 4.
+
+    A failed left pixel ``x`` takes the disparity ``d`` of the nearest consistent
+    pixel to its right (the surface it most likely belongs to, since occluded
+    background lies left of the nearer surface); if ``x - d < 0`` its match would
+    fall left of the right image: it is outside the overlap, not occluded.
+    """
+    H, W = classes.shape
+    for y in prange(H):
+        d_right = np.float32(np.nan)
+        for x in range(W - 1, -1, -1):
+            c = classes[y, x]
+            if c == 0:
+                d_right = disparity[y, x]
+            elif (c == 1 or c == 2) and d_right == d_right and x < d_right:
+                classes[y, x] = 4
+    return classes
+
+
+@njit(cache=True, parallel=True)
+def occlusion_by_step(classes, disparity, min_step):
+    """Keep a failed pixel as occluded only where the scene steps forward to its right.
+
+    In a rectified pair with the right camera at +x, the left camera alone sees
+    background just left of a nearer surface. A run of failed pixels between
+    consistent pixels with disparities ``d_left`` and ``d_right`` is therefore
+    occluded only if ``d_right - d_left >= min_step``; otherwise the failure is a
+    mismatch (low texture, repetition). Runs touching the image border keep
+    their class.
+    """
+    H, W = classes.shape
+    for y in prange(H):
+        x = 0
+        last_valid = -1
+        while x < W:
+            if classes[y, x] == 0:
+                last_valid = x
+                x += 1
+                continue
+            if classes[y, x] != 1 and classes[y, x] != 2:
+                x += 1
+                continue
+            start = x
+            while x < W and (classes[y, x] == 1 or classes[y, x] == 2):
+                x += 1
+            if last_valid < 0 or x >= W or classes[y, x] != 0:
+                continue
+            step = disparity[y, x] - disparity[y, last_valid]
+            if step < min_step:
+                for i in range(start, x):
+                    if classes[y, i] == 1:
+                        classes[y, i] = 2
+    return classes

@@ -168,6 +168,8 @@ def compute_disparity(
     )
     offset = subpixel_offset(cm, c1, cp, params.subpixel)
     disparity = np.where(classes == 0, d_min + best_k + offset, np.nan).astype(np.float32)
+    _kernels.mark_left_border(classes, disparity)
+    _kernels.occlusion_by_step(classes, disparity, np.float32(max(1.0, params.lr_max_diff)))
     confidence = confidence_map(c1, c2, lr_diff, gl)
 
     speckles = speckle_mask(disparity, params.speckle_size, params.speckle_range)
