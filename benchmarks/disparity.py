@@ -161,11 +161,11 @@ def main():
         results = {"opencv sgbm": (t_cv, cv_row)}
         t_hh, d_hh = timed(lambda: opencv_disparity(left, right, lo, hi, "hh"), 1)  # noqa: B023
         results["opencv hh"] = (t_hh, measure(d_hh, gt))
-        for method in ("sgm", "wta"):
-            p = DisparityParams(method=method, disp_range=f"{lo}:{hi}")
+        for method, cost in (("sgm", "census"), ("sgm", "ad_gradient"), ("wta", "census")):
+            p = DisparityParams(method=method, cost=cost, disp_range=f"{lo}:{hi}")
             compute_disparity(left, right, p)  # warm the kernels
             t, res = timed(lambda: compute_disparity(left, right, p))  # noqa: B023
-            results[f"ours {method}"] = (
+            results[f"ours {method} {cost}"] = (
                 t, measure(res.disparity, gt, res.confidence, cv_row["density"]))
         # whole commands on the same files
         from PIL import Image
@@ -186,10 +186,10 @@ def main():
         wall_ours, rss_ours = run_command(cmd_ours)
         wall_cv, rss_cv = run_command(cmd_cv)
         print(f"\n== {name}: {w}x{h}, {hi - lo} disparities ==")
-        print(f"{'method':<13}{'t/sgbm':>8}{'density':>9}{'bad2':>8}{'bad2@cv':>9}"
+        print(f"{'method':<22}{'t/sgbm':>8}{'density':>9}{'bad2':>8}{'bad2@cv':>9}"
               f"{'mae':>7}{'auc':>7}")
         for method, (t, row) in results.items():
-            print(f"{method:<13}{t / t_cv:>8.2f}{row['density']:>9.3f}{row['bad2']:>8.3f}"
+            print(f"{method:<22}{t / t_cv:>8.2f}{row['density']:>9.3f}{row['bad2']:>8.3f}"
                   f"{row.get('bad2_at_cv_density', np.nan):>9.3f}{row['mae']:>7.2f}"
                   f"{row.get('auc', np.nan):>7.3f}")
         print(f"whole command: stereomesh disparity {wall_ours:.2f} s, {rss_ours:.0f} MB peak RSS;"

@@ -55,9 +55,11 @@ class DisparityParams:
 
     method: str = param("sgm", "solver: semi-global matching or winner-takes-all",
                         choices=("sgm", "wta"))
-    cost: str = param("census", "matching cost", choices=("census",))
-    census_width: int = param(7, "census window width, odd, pixels", min=3, max=9)
-    census_height: int = param(5, "census window height, odd, pixels", min=3, max=9)
+    cost: str = param("census", "matching cost: census + Hamming, or absolute difference of "
+                      "intensity and gradient", choices=("census", "ad_gradient"))
+    census_width: int = param(7, "matching window width (census window, or the box of "
+                              "ad_gradient), odd, pixels", min=1, max=9)
+    census_height: int = param(5, "matching window height, odd, pixels", min=1, max=9)
     disp_range: str = param(
         "auto", "disparity search range MIN:MAX (MAX exclusive) or 'auto' from sparse matches"
     )

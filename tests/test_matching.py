@@ -152,3 +152,30 @@ def test_occluded_band_beside_a_foreground_block():
     assert (elsewhere == 1).mean() < 0.05
     # reference: ground truth by construction (background 4 px, block 14 px)
     assert np.nanmedian(res.disparity[10:-10, 60:85]) == pytest.approx(14, abs=0.2)
+
+
+def test_ad_gradient_cost_matches_formula():
+    import cv2
+
+    from stereomesh.matching.costs import ad_gradient_cost
+
+    rng = np.random.default_rng(11)
+    left = (rng.random((7, 19)) * 255).astype(np.float32)
+    right = (rng.random((7, 19)) * 255).astype(np.float32)
+    cost = ad_gradient_cost(left, right, -2, 6, (1, 1))
+    gl = cv2.Sobel(left, cv2.CV_32F, 1, 0, ksize=3) / 8
+    gr = cv2.Sobel(right, cv2.CV_32F, 1, 0, ksize=3) / 8
+    for y, x, k in [(0, 0, 0), (3, 10, 2), (6, 18, 5), (2, 5, 4)]:
+        xr = x - (k - 2)
+        if not 0 <= xr < 19:
+            assert cost[y, x, k] == 34
+            continue
+        expected = 34 * (0.5 * min(abs(left[y, x] - right[y, xr]), 20) / 20
+                         + 0.5 * min(abs(gl[y, x] - gr[y, xr]), 8) / 8)
+        assert abs(int(cost[y, x, k]) - expected) <= 0.5 + 1e-4
+
+
+def test_ad_gradient_recovers_shift():
+    left, right = _shifted_pair()
+    res = compute_disparity(left, right, DisparityParams(cost="ad_gradient", disp_range="0:16"))
+    assert np.nanmedian(res.disparity[:, 20:]) == pytest.approx(6, abs=0.1)

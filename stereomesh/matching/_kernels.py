@@ -407,3 +407,24 @@ def occlusion_by_step(classes, disparity, min_step):
                     if classes[y, i] == 1:
                         classes[y, i] = 2
     return classes
+
+
+@njit(cache=True, parallel=True)
+def ad_gradient_cost_volume(left, right, grad_left, grad_right, d_min, n_disp, trunc_intensity,
+                            trunc_gradient, gradient_weight, scale, invalid_cost):
+    """Truncated absolute intensity + horizontal-gradient difference, scaled to ``scale``."""
+    H, W = left.shape
+    cost = np.empty((H, W, n_disp), np.uint8)
+    wi = (1.0 - gradient_weight) / trunc_intensity
+    wg = gradient_weight / trunc_gradient
+    for y in prange(H):
+        for x in range(W):
+            for k in range(n_disp):
+                xr = x - (d_min + k)
+                if xr < 0 or xr >= W:
+                    cost[y, x, k] = invalid_cost
+                    continue
+                a = min(abs(left[y, x] - right[y, xr]), trunc_intensity)
+                g = min(abs(grad_left[y, x] - grad_right[y, xr]), trunc_gradient)
+                cost[y, x, k] = np.uint8(scale * (wi * a + wg * g) + 0.5)
+    return cost
