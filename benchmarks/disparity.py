@@ -1,4 +1,4 @@
-"""Disparity benchmark: ours (sgm, wta) against OpenCV StereoSGBM in the same run.
+"""Disparity benchmark: ours (sgm, bp, wta) against OpenCV StereoSGBM in the same run.
 
 Pairs: scikit-image's ``stereo_motorcycle`` (Middlebury 2014, Scharstein et al.,
 GCPR 2014, downscaled by scikit-image) and the demo pair in ``demo_data/``.
@@ -161,7 +161,8 @@ def main():
         results = {"opencv sgbm": (t_cv, cv_row)}
         t_hh, d_hh = timed(lambda: opencv_disparity(left, right, lo, hi, "hh"), 1)  # noqa: B023
         results["opencv hh"] = (t_hh, measure(d_hh, gt))
-        for method, cost in (("sgm", "census"), ("sgm", "ad_gradient"), ("wta", "census")):
+        for method, cost in (("sgm", "census"), ("sgm", "ad_gradient"), ("bp", "census"),
+                             ("wta", "census")):
             p = DisparityParams(method=method, cost=cost, disp_range=f"{lo}:{hi}")
             compute_disparity(left, right, p)  # warm the kernels
             t, res = timed(lambda: compute_disparity(left, right, p))  # noqa: B023

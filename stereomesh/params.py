@@ -53,8 +53,8 @@ def parse_disp_range(text: str) -> tuple[int, int] | None:
 class DisparityParams:
     """Matching cost, solver and refinement."""
 
-    method: str = param("sgm", "solver: semi-global matching or winner-takes-all",
-                        choices=("sgm", "wta"))
+    method: str = param("sgm", "solver: semi-global matching, loopy belief propagation or "
+                        "winner-takes-all", choices=("sgm", "bp", "wta"))
     cost: str = param("census", "matching cost: census + Hamming, or absolute difference of "
                       "intensity and gradient", choices=("census", "ad_gradient"))
     census_width: int = param(7, "matching window width (census window, or the box of "
@@ -69,6 +69,17 @@ class DisparityParams:
         8.0, "intensity difference (grey levels) that halves P2; 0 keeps P2 fixed", min=0.0
     )
     paths: int = param(8, "number of SGM path directions", choices=(4, 8))
+    bp_potential: str = param("truncated_linear", "pairwise term of belief propagation",
+                              choices=("truncated_linear", "potts"))
+    bp_weight: float = param(6.0, "belief propagation: cost per unit of disparity step "
+                             "(or per label change for Potts)", min=0.0)
+    bp_truncation: float = param(4.0, "belief propagation: truncation of the linear term, "
+                                 "disparity steps", min=1.0)
+    bp_iterations: int = param(5, "belief propagation iterations per pyramid level", min=1,
+                               max=200)
+    bp_levels: int = param(4, "belief propagation coarse-to-fine levels", min=1, max=8)
+    bp_tolerance: float = param(0.001, "stop when this share of labels changes in an iteration",
+                                min=0.0, max=1.0)
     subpixel: str = param("parabola", "sub-pixel interpolation of the cost minimum",
                           choices=("parabola", "equiangular", "none"))
     lr_max_diff: int = param(1, "left-right check tolerance, pixels", min=0, max=16)

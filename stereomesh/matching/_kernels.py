@@ -256,12 +256,12 @@ def select_right(volume, d_min):
     for y in prange(H):
         for xr in range(W):
             bk = -1
-            bv = np.int64(1) << 40
+            bv = np.inf
             for k in range(D):
                 x = xr + d_min + k
                 if x < 0 or x >= W:
                     continue
-                v = np.int64(volume[y, x, k])
+                v = np.float64(volume[y, x, k])
                 if v < bv:
                     bv = v
                     bk = k
@@ -428,3 +428,102 @@ def ad_gradient_cost_volume(left, right, grad_left, grad_right, d_min, n_disp, t
                 g = min(abs(grad_left[y, x] - grad_right[y, xr]), trunc_gradient)
                 cost[y, x, k] = np.uint8(scale * (wi * a + wg * g) + 0.5)
     return cost
+
+
+# --- loopy min-sum belief propagation ----------------------------------------------------
+
+
+@njit(cache=True, inline="always")
+def _bp_message(h, out, kind, weight, trunc):
+    """min_j h(j) + V(j, k) in O(D), normalised to a zero minimum.
+
+    Truncated linear by the two-pass distance transform, Potts by one min.
+    """
+    D = h.shape[0]
+    hmin = h[0]
+    for k in range(1, D):
+        if h[k] < hmin:
+            hmin = h[k]
+    cap = hmin + (weight * trunc if kind == 1 else weight)
+    if kind == 1:
+        out[0] = h[0]
+        for k in range(1, D):
+            v = out[k - 1] + weight
+            out[k] = h[k] if h[k] < v else v
+        for k in range(D - 2, -1, -1):
+            v = out[k + 1] + weight
+            if v < out[k]:
+                out[k] = v
+    else:
+        for k in range(D):
+            out[k] = h[k]
+    m = cap
+    for k in range(D):
+        if cap < out[k]:
+            out[k] = cap
+        if out[k] < m:
+            m = out[k]
+    for k in range(D):
+        out[k] -= m
+
+
+@njit(cache=True, parallel=True)
+def bp_sweep(data, up, down, left, right, parity, kind, weight, trunc):
+    """One checkerboard half-iteration: pixels with ``(x + y) % 2 == parity`` send.
+
+    ``up[y, x]`` is the message into pixel (y, x) from its upper neighbour, and
+    so on. Senders of one colour only write into pixels of the other colour, so
+    the rows run in parallel without races.
+    """
+    H, W, D = data.shape
+    for y in prange(H):
+        h = np.empty(D, np.float32)
+        base = np.empty(D, np.float32)
+        x0 = (parity + y) % 2
+        for x in range(x0, W, 2):
+            for k in range(D):
+                base[k] = data[y, x, k] + up[y, x, k] + down[y, x, k]
+                base[k] += left[y, x, k] + right[y, x, k]
+            if x + 1 < W:
+                for k in range(D):
+                    h[k] = base[k] - right[y, x, k]
+                _bp_message(h, left[y, x + 1], kind, weight, trunc)
+            if x >= 1:
+                for k in range(D):
+                    h[k] = base[k] - left[y, x, k]
+                _bp_message(h, right[y, x - 1], kind, weight, trunc)
+            if y + 1 < H:
+                for k in range(D):
+                    h[k] = base[k] - down[y, x, k]
+                _bp_message(h, up[y + 1, x], kind, weight, trunc)
+            if y >= 1:
+                for k in range(D):
+                    h[k] = base[k] - up[y, x, k]
+                _bp_message(h, down[y - 1, x], kind, weight, trunc)
+
+
+@njit(cache=True, parallel=True)
+def bp_beliefs(data, up, down, left, right, out):
+    H, W, D = data.shape
+    for y in prange(H):
+        for x in range(W):
+            for k in range(D):
+                v = data[y, x, k] + up[y, x, k] + down[y, x, k]
+                out[y, x, k] = v + left[y, x, k] + right[y, x, k]
+    return out
+
+
+@njit(cache=True, parallel=True)
+def argmin_labels(volume):
+    H, W, D = volume.shape
+    out = np.empty((H, W), np.int32)
+    for y in prange(H):
+        for x in range(W):
+            bk = 0
+            bv = volume[y, x, 0]
+            for k in range(1, D):
+                if volume[y, x, k] < bv:
+                    bv = volume[y, x, k]
+                    bk = k
+            out[y, x] = bk
+    return out

@@ -70,6 +70,15 @@ def to_gray(image: np.ndarray) -> np.ndarray:
     return np.ascontiguousarray(img, np.float32)
 
 
+def pairwise_term(params: DisparityParams):
+    """The belief-propagation pairwise term ``V`` the parameters describe."""
+    from stereomesh.matching.energy import Potts, TruncatedLinear
+
+    if params.bp_potential == "potts":
+        return Potts(params.bp_weight)
+    return TruncatedLinear(params.bp_weight, params.bp_truncation)
+
+
 def compute_disparity(
     left: np.ndarray,
     right: np.ndarray,
@@ -147,6 +156,18 @@ def compute_disparity(
             p2_gradient_scale=params.p2_gradient_scale,
             paths=params.paths,
         )
+    elif params.method == "bp":
+        from stereomesh.matching.bp import belief_propagation
+
+        volume, bp_info = belief_propagation(
+            cost,
+            pairwise_term(params),
+            iterations=params.bp_iterations,
+            levels=params.bp_levels,
+            tolerance=params.bp_tolerance,
+            return_info=True,
+        )
+        figures["bp"] = bp_info
     elif params.method == "wta":
         volume = cost
     else:
@@ -162,6 +183,7 @@ def compute_disparity(
     # One energy for every solver (SGM's step penalty on the 4-connected grid),
     # so that results of different solvers can be compared in the report.
     energy = grid_energy(labels, cost, StepPenalty(params.p1, params.p2))
+    bp_energy = grid_energy(labels, cost, pairwise_term(params))
     del cost
     classes, lr_diff = _kernels.consistency_classes(
         best_k, best_right, d_min, n_disp, params.lr_max_diff
@@ -195,6 +217,7 @@ def compute_disparity(
         speckle_pixels=int(speckles.sum()),
         energy=energy,
         energy_pairwise_term={"kind": "step", "p1": params.p1, "p2": params.p2},
+        energy_bp_term=bp_energy,
         step_seconds=timings,
     )
     return DisparityResult(disparity, confidence, classes, labels, d_min, n_disp, figures)
