@@ -179,3 +179,30 @@ def test_ad_gradient_recovers_shift():
     left, right = _shifted_pair()
     res = compute_disparity(left, right, DisparityParams(cost="ad_gradient", disp_range="0:16"))
     assert np.nanmedian(res.disparity[:, 20:]) == pytest.approx(6, abs=0.1)
+
+
+def test_strips_bound_memory_and_keep_results_and_energy():
+    # A small memory budget forces overlapping row strips; the stitched result
+    # must match the one-piece result closely, and the energy summed strip by
+    # strip must equal the energy of the stitched labels on the whole volume.
+    from conftest import DEMO
+    from PIL import Image
+
+    left = np.asarray(Image.open(DEMO / "left.png"))
+    right = np.asarray(Image.open(DEMO / "right.png"))
+    whole = compute_disparity(left, right, DisparityParams(disp_range="64:192"))
+    tiled = compute_disparity(left, right, DisparityParams(disp_range="64:192",
+                                                           memory_budget_mb=64))
+    assert whole.figures["strips"] == 1 and tiled.figures["strips"] > 2
+    both = np.isfinite(whole.disparity) & np.isfinite(tiled.disparity)
+    assert both.sum() > 0.97 * np.isfinite(whole.disparity).sum()
+    assert (np.abs(whole.disparity - tiled.disparity)[both] > 1).mean() < 0.01
+    cost = census_cost(_gray(left), _gray(right), 64, 128, (7, 5))
+    direct = grid_energy(tiled.labels, cost, StepPenalty(8, 96))
+    assert tiled.figures["energy"]["total"] == pytest.approx(direct["total"], rel=1e-9)
+
+
+def _gray(image):
+    from stereomesh.matching.disparity import to_gray
+
+    return to_gray(image)
