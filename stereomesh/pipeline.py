@@ -278,7 +278,7 @@ def run_pipeline(
         progress("surface", 0.7)
         t = time.perf_counter()
         sp = params.surface
-        keep = _kept_pixels(result.disparity, cloud, rig)
+        keep = _kept_pixels(result, cloud, params)
         if sp.surface == "grid":
             from stereomesh.geometry.surface import depth_grid_mesh
 
@@ -326,13 +326,19 @@ def run_pipeline(
     return report.finish(out_dir / "report.json")
 
 
-def _kept_pixels(disparity: np.ndarray, cloud, rig: RectifiedRig) -> np.ndarray:
-    """Pixels whose point survived the cloud filters (so the grid mesh honours them)."""
+def _kept_pixels(result, cloud, params: Params) -> np.ndarray:
+    """Pixels whose point survived the cloud filters (so the grid mesh honours them).
+
+    After voxel downsampling points no longer stand for single pixels; the grid
+    mesh then keeps every pixel that passed the per-pixel filters.
+    """
+    disparity = result.disparity
+    if params.cloud.voxel_size > 0 or cloud.pixels is None:
+        return np.isfinite(disparity) & (result.confidence >= params.cloud.cloud_min_confidence)
     keep = np.zeros(disparity.shape, bool)
-    if cloud.pixels is not None and len(cloud):
+    if len(cloud):
         keep[cloud.pixels[:, 1], cloud.pixels[:, 0]] = True
-        return keep
-    return np.isfinite(disparity)
+    return keep
 
 
 def _extra_exports(out_dir: Path, mesh, cloud, params: Params, report: Report) -> None:

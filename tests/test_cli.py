@@ -117,3 +117,19 @@ def test_run_on_motorcycle_writes_every_output(motorcycle, tmp_path):
     assert any((out / "previews").glob("*.png"))
     report = json.loads((out / "report.json").read_text())
     assert report["status"] == "ok" and report["stages"]["repair"]["faces_after"] > 1000
+
+
+def test_run_poisson_surface_with_voxel_cloud(motorcycle, tmp_path):
+    # The closed-surface path: voxel-downsampled cloud, screened Poisson, repair.
+    d = motorcycle["dir"]
+    out = tmp_path / "poisson"
+    code, _, stderr = run_cli("run", d / "left.png", d / "right.png", "--calib",
+                              d / "calib.json", "--out", out, "--disp-range", "0:80",
+                              "--surface", "poisson", "--voxel-size", "0.005",
+                              "--poisson-depth", "8", "--quiet")
+    assert code == 0, stderr
+    report = json.loads((out / "report.json").read_text())
+    assert report["stages"]["surface"]["method"] == "poisson"
+    assert report["stages"]["filter_cloud"]["points"]["after_voxel"] < \
+        report["stages"]["filter_cloud"]["points"]["input"]
+    assert report["stages"]["repair"]["faces_after"] > 1000
