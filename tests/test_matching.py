@@ -206,3 +206,15 @@ def _gray(image):
     from stereomesh.matching.disparity import to_gray
 
     return to_gray(image)
+
+
+def test_fused_horizontal_paths_equal_two_single_passes():
+    rng = np.random.default_rng(12)
+    cost = rng.integers(0, 35, (9, 31, 12)).astype(np.uint8)
+    gray = (rng.random((9, 31)) * 255).astype(np.float32)
+    two = np.zeros(cost.shape, np.uint16)
+    _kernels.aggregate_horizontal(cost, gray, 8, 60, 8.0, two, False)
+    _kernels.aggregate_horizontal(cost, gray, 8, 60, 8.0, two, True)
+    fused = np.full(cost.shape, 999, np.uint16)  # overwritten, not added to
+    _kernels.aggregate_horizontal_both(cost, gray, 8, 60, 8.0, fused)
+    np.testing.assert_array_equal(fused, two)

@@ -68,11 +68,10 @@ def aggregate_costs(
         raise ValueError(f"gray {gray.shape} does not match the cost volume {(h, w)}")
     from stereomesh.matching import _kernels
 
-    total = np.zeros(cost.shape, np.uint16)
+    total = np.empty(cost.shape, np.uint16)
     g = float(p2_gradient_scale)
     diag = paths == 8
-    _kernels.aggregate_horizontal(cost, gray, int(p1), int(p2), g, total, False)
-    _kernels.aggregate_horizontal(cost, gray, int(p1), int(p2), g, total, True)
+    _kernels.aggregate_horizontal_both(cost, gray, int(p1), int(p2), g, total)
     _kernels.aggregate_vertical(cost, gray, int(p1), int(p2), g, total, False, diag)
     _kernels.aggregate_vertical(cost, gray, int(p1), int(p2), g, total, True, diag)
     return total
