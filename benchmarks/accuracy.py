@@ -23,7 +23,7 @@ import numpy as np
 REPO = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(REPO))
 
-from stereomesh.evaluation import f_score, sample_surface  # noqa: E402
+from stereomesh.evaluation import covisible_points, f_score, sample_surface  # noqa: E402
 from stereomesh.io.pfm import read_pfm  # noqa: E402
 from stereomesh.io.ply import read_ply  # noqa: E402
 from stereomesh.params import Params  # noqa: E402
@@ -60,12 +60,8 @@ def demo_figures(out: Path) -> None:
     score = f_score(pred, truth, tau)
     calib = json.loads((demo / "calib.json").read_text())
     gt_classes = np.asarray(Image.open(demo / "gt_occlusion.png"))
-    u = np.rint(calib["focal_px"] * truth[:, 0] / truth[:, 2] + calib["cx"]).astype(int)
-    v = np.rint(calib["focal_px"] * truth[:, 1] / truth[:, 2] + calib["cy"]).astype(int)
-    ok = (u >= 0) & (u < gt.shape[1]) & (v >= 0) & (v < gt.shape[0])
-    seen_by_both = np.zeros(len(truth), bool)
-    seen_by_both[ok] = gt_classes[v[ok], u[ok]] == 0
-    recall_both = f_score(pred, truth[seen_by_both], tau)["recall"]
+    seen = covisible_points(truth, gt_classes, calib["focal_px"], calib["cx"], calib["cy"])
+    recall_both = f_score(pred, seen, tau)["recall"]
     f_both = 2 * score["precision"] * recall_both / (score["precision"] + recall_both)
     print(f"demo pair ({gt.shape[1]}x{gt.shape[0]}), pipeline {wall:.1f} s "
           f"(peak {report['peak_memory_mb']:.0f} MB)")

@@ -31,6 +31,7 @@ import numpy as np
 REPO = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(REPO))
 
+from stereomesh.evaluation import sparsification_auc  # noqa: E402
 from stereomesh.matching.disparity import compute_disparity  # noqa: E402
 from stereomesh.params import DisparityParams  # noqa: E402
 
@@ -69,15 +70,6 @@ def timed(fn, repeat=3):
         out = fn()
         best = min(best, time.perf_counter() - t)
     return best, out
-
-
-def sparsification_auc(abs_err, conf, steps=20):
-    order = np.argsort(-conf, kind="stable")
-    err = abs_err[order]
-    n = err.size
-    fracs = np.linspace(0, 0.95, steps)
-    means = [err[: max(1, int(round(n * (1 - f))))].mean() for f in fracs]
-    return float(np.trapezoid(means, fracs) / fracs[-1])
 
 
 def measure(disp, gt, conf=None, target_density=None):

@@ -246,6 +246,43 @@ def _trapezoid(y: np.ndarray, x: np.ndarray) -> float:
     return float(np.sum((y[1:] + y[:-1]) * np.diff(x)) / 2.0)
 
 
+def covisible_points(
+    points: np.ndarray, occlusion: np.ndarray, focal_px: float, cx: float, cy: float
+) -> np.ndarray:
+    """The points whose left-image pixel both cameras see.
+
+    Parameters
+    ----------
+    points : (N, 3) float array
+        Points in the left rectified camera frame (x right, y down, z forward).
+    occlusion : (H, W) uint8 array
+        Occlusion classes of the left image (0 where the right camera sees the pixel).
+    focal_px, cx, cy : float
+        Left rectified intrinsics, pixels.
+
+    Returns
+    -------
+    (M, 3) float array
+        The points projecting to a class-0 pixel inside the image.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> occ = np.zeros((2, 2), np.uint8); occ[0, 0] = 1
+    >>> pts = np.array([[-0.5, -0.5, 1.0], [0.5, 0.5, 1.0]])
+    >>> covisible_points(pts, occ, 1.0, 0.5, 0.5).tolist()
+    [[0.5, 0.5, 1.0]]
+    """
+    points = np.asarray(points, np.float64)
+    u = np.rint(focal_px * points[:, 0] / points[:, 2] + cx).astype(int)
+    v = np.rint(focal_px * points[:, 1] / points[:, 2] + cy).astype(int)
+    h, w = occlusion.shape
+    inside = (u >= 0) & (u < w) & (v >= 0) & (v < h)
+    keep = np.zeros(len(points), bool)
+    keep[inside] = occlusion[v[inside], u[inside]] == 0
+    return points[keep]
+
+
 def sample_surface(vertices: np.ndarray, faces: np.ndarray, n: int, seed: int = 0) -> np.ndarray:
     """Points drawn uniformly by area from a triangle mesh.
 

@@ -7,7 +7,7 @@ import pytest
 from conftest import DEMO, run_cli
 from PIL import Image
 
-from stereomesh.evaluation import f_score, sample_surface
+from stereomesh.evaluation import covisible_points, f_score, sample_surface
 from stereomesh.io.pfm import read_pfm
 from stereomesh.io.ply import read_ply
 
@@ -51,17 +51,6 @@ def test_demo_occluded_class_against_truth(demo_run):
     assert hit / predicted.sum() >= 0.8 and hit / truth.sum() >= 0.8
 
 
-def covisible(points, occlusion, calib):
-    """Points whose left-image pixel the right camera also sees (ground-truth class 0)."""
-    u = np.rint(calib["focal_px"] * points[:, 0] / points[:, 2] + calib["cx"]).astype(int)
-    v = np.rint(calib["focal_px"] * points[:, 1] / points[:, 2] + calib["cy"]).astype(int)
-    h, w = occlusion.shape
-    inside = (u >= 0) & (u < w) & (v >= 0) & (v < h)
-    keep = np.zeros(len(points), bool)
-    keep[inside] = occlusion[v[inside], u[inside]] == 0
-    return points[keep]
-
-
 def test_demo_mesh_f_score(demo_run):
     # F-score at tau = 1 % of the median depth, as defined by Knapitsch et al. 2017
     # (Tanks and Temples): precision = share of our surface samples within tau of the
@@ -79,7 +68,8 @@ def test_demo_mesh_f_score(demo_run):
     truth = sample_surface(gv, gt["faces"], 200_000, seed=2)
     tau = 0.01 * float(np.median(gv[:, 2]))
     precision = f_score(pred, truth, tau)["precision"]
-    recall = f_score(pred, covisible(truth, occlusion, calib), tau)["recall"]
+    seen = covisible_points(truth, occlusion, calib["focal_px"], calib["cx"], calib["cy"])
+    recall = f_score(pred, seen, tau)["recall"]
     f = 2 * precision * recall / (precision + recall)
     assert f >= 0.90, (precision, recall, f)
 

@@ -107,7 +107,6 @@ def test_speckle_mask_flags_small_blob_only():
 def _shifted_pair(shift=6, h=48, w=96, seed=0):
     rng = np.random.default_rng(seed)
     right = (rng.random((h, w)) * 255).astype(np.uint8)
-    right = np.repeat(np.repeat(right, 1, 0), 1, 1)
     left = np.roll(right, shift, axis=1)
     return left, right
 

@@ -100,6 +100,41 @@ def _path_step(c, prev, prev_min, out, p1, p2):
     return m
 
 
+@njit(cache=True, inline="always")
+def _horizontal_row(cost, gray, y, p1, p2, g_scale, total, reverse, overwrite, prev, cur):
+    """One row's horizontal path costs, written into (or added to) ``total[y]``."""
+    W = cost.shape[1]
+    D = cost.shape[2]
+    x = W - 1 if reverse else 0
+    pm = _BIG
+    for k in range(D):
+        prev[k] = cost[y, x, k]
+        if overwrite:
+            total[y, x, k] = cost[y, x, k]
+        else:
+            total[y, x, k] += cost[y, x, k]
+        if prev[k] < pm:
+            pm = prev[k]
+    for i in range(1, W):
+        if reverse:
+            x = W - 1 - i
+            xp = x + 1
+        else:
+            x = i
+            xp = x - 1
+        pen = _penalty2(p1, p2, g_scale, gray[y, x], gray[y, xp])
+        pm = _path_step(cost[y, x], prev, pm, cur, p1, pen)
+        if overwrite:
+            for k in range(D):
+                total[y, x, k] = cur[k]
+        else:
+            for k in range(D):
+                total[y, x, k] += cur[k]
+        tmp = prev
+        prev = cur
+        cur = tmp
+
+
 @njit(cache=True, parallel=True)
 def aggregate_horizontal(cost, gray, p1, p2, g_scale, total, reverse):
     """Add the left-to-right (or right-to-left) path costs into ``total``."""
@@ -107,27 +142,7 @@ def aggregate_horizontal(cost, gray, p1, p2, g_scale, total, reverse):
     for y in prange(H):
         prev = np.empty(D, np.int32)
         cur = np.empty(D, np.int32)
-        x = W - 1 if reverse else 0
-        pm = _BIG
-        for k in range(D):
-            prev[k] = cost[y, x, k]
-            total[y, x, k] += cost[y, x, k]
-            if prev[k] < pm:
-                pm = prev[k]
-        for i in range(1, W):
-            if reverse:
-                x = W - 1 - i
-                xp = x + 1
-            else:
-                x = i
-                xp = x - 1
-            pen = _penalty2(p1, p2, g_scale, gray[y, x], gray[y, xp])
-            pm = _path_step(cost[y, x], prev, pm, cur, p1, pen)
-            for k in range(D):
-                total[y, x, k] += cur[k]
-            tmp = prev
-            prev = cur
-            cur = tmp
+        _horizontal_row(cost, gray, y, p1, p2, g_scale, total, reverse, False, prev, cur)
     return total
 
 
@@ -540,33 +555,6 @@ def aggregate_horizontal_both(cost, gray, p1, p2, g_scale, total):
     for y in prange(H):
         prev = np.empty(D, np.int32)
         cur = np.empty(D, np.int32)
-        for reverse in (False, True):
-            x = W - 1 if reverse else 0
-            pm = _BIG
-            for k in range(D):
-                prev[k] = cost[y, x, k]
-                if reverse:
-                    total[y, x, k] += cost[y, x, k]
-                else:
-                    total[y, x, k] = cost[y, x, k]
-                if prev[k] < pm:
-                    pm = prev[k]
-            for i in range(1, W):
-                if reverse:
-                    x = W - 1 - i
-                    xp = x + 1
-                else:
-                    x = i
-                    xp = x - 1
-                pen = _penalty2(p1, p2, g_scale, gray[y, x], gray[y, xp])
-                pm = _path_step(cost[y, x], prev, pm, cur, p1, pen)
-                if reverse:
-                    for k in range(D):
-                        total[y, x, k] += cur[k]
-                else:
-                    for k in range(D):
-                        total[y, x, k] = cur[k]
-                tmp = prev
-                prev = cur
-                cur = tmp
+        _horizontal_row(cost, gray, y, p1, p2, g_scale, total, False, True, prev, cur)
+        _horizontal_row(cost, gray, y, p1, p2, g_scale, total, True, False, prev, cur)
     return total
