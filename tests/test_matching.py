@@ -191,8 +191,8 @@ def test_strips_bound_memory_and_keep_results_and_energy():
     right = np.asarray(Image.open(DEMO / "right.png"))
     whole = compute_disparity(left, right, DisparityParams(disp_range="64:192"))
     tiled = compute_disparity(left, right, DisparityParams(disp_range="64:192",
-                                                           memory_budget_mb=64))
-    assert whole.figures["strips"] == 1 and tiled.figures["strips"] > 2
+                                                           memory_budget_mb=16))
+    assert whole.figures["strips"] == 1 and tiled.figures["strips"] > 1
     both = np.isfinite(whole.disparity) & np.isfinite(tiled.disparity)
     assert both.sum() > 0.97 * np.isfinite(whole.disparity).sum()
     assert (np.abs(whole.disparity - tiled.disparity)[both] > 1).mean() < 0.01

@@ -26,26 +26,54 @@ def _popcount64(v):
 
 
 @njit(cache=True, parallel=True)
-def census_transform(gray, win_w, win_h):
-    """Census bit string per pixel: bit set where the neighbour is darker than the centre."""
-    H, W = gray.shape
-    rw = win_w // 2
-    rh = win_h // 2
-    out = np.zeros((H, W), np.uint64)
+def edge_padded(image, pad_rows, pad_cols):
+    """``image`` with its border rows and columns replicated ``pad_rows``/``pad_cols`` times."""
+    H, W = image.shape
+    out = np.empty((H + 2 * pad_rows, W + 2 * pad_cols), image.dtype)
+    for yy in prange(H + 2 * pad_rows):
+        y = min(max(yy - pad_rows, 0), H - 1)
+        for xx in range(W + 2 * pad_cols):
+            out[yy, xx] = image[y, min(max(xx - pad_cols, 0), W - 1)]
+    return out
+
+
+@njit(cache=True, parallel=True)
+def reversed_padded(rows, pad):
+    """Each row in reverse column order with ``pad`` zeros on both sides."""
+    H, W = rows.shape
+    out = np.zeros((H, W + 2 * pad), rows.dtype)
     for y in prange(H):
         for x in range(W):
-            c = gray[y, x]
-            bits = np.uint64(0)
-            for dy in range(-rh, rh + 1):
-                yy = min(max(y + dy, 0), H - 1)
-                for dx in range(-rw, rw + 1):
-                    if dy == 0 and dx == 0:
-                        continue
-                    xx = min(max(x + dx, 0), W - 1)
-                    bits = bits << np.uint64(1)
-                    if gray[yy, xx] < c:
-                        bits = bits | np.uint64(1)
-            out[y, x] = bits
+            out[y, pad + x] = rows[y, W - 1 - x]
+    return out
+
+
+@njit(cache=True, parallel=True)
+def census_transform(padded, win_w, win_h):
+    """Census bit string per pixel: bit set where the neighbour is darker than the centre.
+
+    ``padded`` is the grey image with ``win_h // 2`` rows and ``win_w // 2``
+    columns of replicated border on each side. One neighbour offset at a time
+    over a whole row, so that the comparisons vectorise across pixels.
+    """
+    Hp, Wp = padded.shape
+    rw = win_w // 2
+    rh = win_h // 2
+    H = Hp - 2 * rh
+    W = Wp - 2 * rw
+    out = np.zeros((H, W), np.uint64)
+    one = np.uint64(1)
+    zero = np.uint64(0)
+    for y in prange(H):
+        row = out[y]
+        centre = padded[y + rh, rw : rw + W]
+        for dy in range(-rh, rh + 1):
+            for dx in range(-rw, rw + 1):
+                if dy == 0 and dx == 0:
+                    continue
+                src = padded[y + rh + dy, rw + dx : rw + dx + W]
+                for x in range(W):
+                    row[x] = (row[x] << one) | (one if src[x] < centre[x] else zero)
     return out
 
 
@@ -284,51 +312,201 @@ def select_right(volume, d_min):
     return best
 
 
-@njit(cache=True, parallel=True)
-def consistency_classes(best_left, best_right, d_min, n_disp, max_diff):
-    """Left-right check with occluded and mismatched pixels told apart.
+@njit(cache=True, inline="always")
+def _consistency_row(y, best_left, best_right, d_min, n_disp, max_diff, classes, lr_diff):
+    """Left-right check of row ``y`` with occluded and mismatched pixels told apart.
 
     A left pixel that fails the check is *mismatched* when some hypothesis maps
     it to a right pixel whose own winner points back to it, and *occluded* when
-    none does (the right-image test of semi-global matching). Returns uint8
-    classes: 0 consistent, 1 occluded, 2 mismatch, 4 no valid hypothesis or the
-    winner at an end of the search range, and the right winner's disparity
-    offset ``|k_left - k_right|`` as float32 (inf where undefined).
+    none does (the right-image test of semi-global matching). Classes: 0
+    consistent, 1 occluded, 2 mismatch, 4 no valid hypothesis or the winner at
+    an end of the search range; ``lr_diff`` is ``|k_left - k_right|`` (inf where
+    undefined).
     """
-    H, W = best_left.shape
-    classes = np.zeros((H, W), np.uint8)
-    lr_diff = np.full((H, W), np.inf, np.float32)
-    for y in prange(H):
-        for x in range(W):
-            k = best_left[y, x]
-            if k < 0:
-                classes[y, x] = 4
+    W = best_left.shape[1]
+    for x in range(W):
+        lr_diff[y, x] = np.inf
+        classes[y, x] = 0
+        k = best_left[y, x]
+        if k < 0:
+            classes[y, x] = 4
+            continue
+        xr = x - (d_min + k)
+        kr = best_right[y, xr]
+        if kr >= 0:
+            lr_diff[y, x] = abs(k - kr)
+        if k == 0 or k == n_disp - 1:
+            classes[y, x] = 4
+            continue
+        if kr >= 0 and abs(k - kr) <= max_diff:
+            continue
+        cls = 1
+        for k2 in range(n_disp):
+            xr2 = x - (d_min + k2)
+            if xr2 < 0 or xr2 >= W:
                 continue
-            xr = x - (d_min + k)
-            kr = best_right[y, xr]
-            if kr >= 0:
-                lr_diff[y, x] = abs(k - kr)
-            if k == 0 or k == n_disp - 1:
-                classes[y, x] = 4
-                continue
-            if kr >= 0 and abs(k - kr) <= max_diff:
-                continue
-            cls = 1
-            for k2 in range(n_disp):
-                xr2 = x - (d_min + k2)
-                if xr2 < 0 or xr2 >= W:
-                    continue
-                kr2 = best_right[y, xr2]
-                if kr2 >= 0 and abs(kr2 - k2) <= max_diff:
-                    cls = 2
-                    break
-            classes[y, x] = cls
-    return classes, lr_diff
+            kr2 = best_right[y, xr2]
+            if kr2 >= 0 and abs(kr2 - k2) <= max_diff:
+                cls = 2
+                break
+        classes[y, x] = cls
+
+
+@njit(cache=True, inline="always")
+def _subpixel(cm, c0, cp, kind):
+    """Offset of the cost minimum in [-0.5, 0.5]: 0 parabola, 1 equiangular, 2 none.
+
+    The same formulas as :func:`stereomesh.matching.refine.subpixel_offset`.
+    """
+    if kind == 2:
+        return 0.0
+    if kind == 0:
+        denom = 2.0 * (cm - 2.0 * c0 + cp)
+    else:
+        denom = 2.0 * max(cm - c0, cp - c0)
+    off = (cm - cp) / denom if denom > 0 else 0.0
+    return min(max(off, -0.5), 0.5)
+
+
+@njit(cache=True, inline="always")
+def _left_border_row(y, classes, disparity):
+    """Re-label failed pixels of row ``y`` that map outside the right image as class 4.
+
+    A failed left pixel ``x`` takes the disparity ``d`` of the nearest consistent
+    pixel to its right (the surface it most likely belongs to, since occluded
+    background lies left of the nearer surface); if ``x - d < 0`` its match would
+    fall left of the right image: it is outside the overlap, not occluded.
+    """
+    W = classes.shape[1]
+    d_right = np.float32(np.nan)
+    for x in range(W - 1, -1, -1):
+        c = classes[y, x]
+        if c == 0:
+            d_right = disparity[y, x]
+        elif (c == 1 or c == 2) and d_right == d_right and x < d_right:
+            classes[y, x] = 4
+
+
+@njit(cache=True, inline="always")
+def _occlusion_by_step_row(y, classes, disparity, min_step):
+    """Keep a failed pixel of row ``y`` as occluded only where the scene steps forward.
+
+    In a rectified pair with the right camera at +x, the left camera alone sees
+    background just left of a nearer surface. A run of failed pixels between
+    consistent pixels with disparities ``d_left`` and ``d_right`` is therefore
+    occluded only if ``d_right - d_left >= min_step``; otherwise the failure is a
+    mismatch (low texture, repetition). Runs touching the image border keep
+    their class.
+    """
+    W = classes.shape[1]
+    x = 0
+    last_valid = -1
+    while x < W:
+        if classes[y, x] == 0:
+            last_valid = x
+            x += 1
+            continue
+        if classes[y, x] != 1 and classes[y, x] != 2:
+            x += 1
+            continue
+        start = x
+        while x < W and (classes[y, x] == 1 or classes[y, x] == 2):
+            x += 1
+        if last_valid < 0 or x >= W or classes[y, x] != 0:
+            continue
+        step = disparity[y, x] - disparity[y, last_valid]
+        if step < min_step:
+            for i in range(start, x):
+                if classes[y, i] == 1:
+                    classes[y, i] = 2
 
 
 @njit(cache=True, parallel=True)
-def grid_energy_terms(labels, cost, kind, weight, trunc, p1, p2):
+def refine_winners(best_left, best_right, c_minus, c_best, c_plus, d_min, n_disp, max_diff,
+                   subpixel_kind, min_step):
+    """Classes, left-right differences and sub-pixel disparity, row by row.
+
+    The left-right check with its classes, the sub-pixel disparity of the
+    consistent pixels (NaN elsewhere), the outside-overlap re-labelling and the
+    occluded-or-mismatch decision by the depth step; see the row helpers.
+    """
+    H, W = best_left.shape
+    classes = np.empty((H, W), np.uint8)
+    lr_diff = np.empty((H, W), np.float32)
+    disparity = np.empty((H, W), np.float32)
+    for y in prange(H):
+        _consistency_row(y, best_left, best_right, d_min, n_disp, max_diff, classes, lr_diff)
+        for x in range(W):
+            if classes[y, x] == 0:
+                off = _subpixel(c_minus[y, x], c_best[y, x], c_plus[y, x], subpixel_kind)
+                disparity[y, x] = np.float32(d_min + best_left[y, x] + off)
+            else:
+                disparity[y, x] = np.nan
+        _left_border_row(y, classes, disparity)
+        _occlusion_by_step_row(y, classes, disparity, min_step)
+    return classes, lr_diff, disparity
+
+
+@njit(cache=True, parallel=True)
+def confidence_kernel(c_best, c_second, lr_diff, gray, peak_ratio_scale, lr_sigma, texture_scale):
+    """Product of the peak-ratio, left-right and texture cues; see ``confidence_map``.
+
+    Texture: magnitude of the 3×3 Sobel gradient (divided by 8), averaged over
+    5×5, with reflected borders (OpenCV's default, ``gfedcb|abcdefgh|gfedcba``).
+    """
+    H, W = gray.shape
+    grad = np.empty((H, W), np.float32)
+    for y in prange(H):
+        ym = _reflect101(y - 1, H)
+        yp = _reflect101(y + 1, H)
+        for x in range(W):
+            xm = _reflect101(x - 1, W)
+            xp = _reflect101(x + 1, W)
+            gx = (gray[ym, xp] - gray[ym, xm]) + 2.0 * (gray[y, xp] - gray[y, xm]) + (
+                gray[yp, xp] - gray[yp, xm])
+            gy = (gray[yp, xm] - gray[ym, xm]) + 2.0 * (gray[yp, x] - gray[ym, x]) + (
+                gray[yp, xp] - gray[ym, xp])
+            grad[y, x] = np.sqrt(gx * gx + gy * gy) / 8.0
+    conf = np.empty((H, W), np.float32)
+    for y in prange(H):
+        rows = np.empty(W, np.float32)
+        for x in range(W):
+            acc = 0.0
+            for dy in range(-2, 3):
+                acc += grad[_reflect101(y + dy, H), x]
+            rows[x] = acc
+        for x in range(W):
+            acc = 0.0
+            for dx in range(-2, 3):
+                acc += rows[_reflect101(x + dx, W)]
+            texture = 1.0 - np.exp(-(acc / 25.0) / texture_scale)
+            c1 = c_best[y, x]
+            c2 = c_second[y, x]
+            margin = (c2 - c1) / c2 if (np.isfinite(c2) and c2 > 0) else 1.0
+            peak = min(max(margin / peak_ratio_scale, 0.0), 1.0)
+            lr = np.exp(-0.5 * (lr_diff[y, x] / lr_sigma) ** 2)
+            c = peak * lr * texture
+            conf[y, x] = min(max(c, 0.0), 1.0) if c == c else 0.0
+    return conf
+
+
+@njit(cache=True, inline="always")
+def _reflect101(i, n):
+    if n == 1:
+        return 0
+    if i < 0:
+        return -i
+    if i >= n:
+        return 2 * n - 2 - i
+    return i
+
+
+@njit(cache=True, parallel=True)
+def grid_energy_terms(labels, cost, at_labels, kind, weight, trunc, p1, p2):
     """Unary and pairwise sums of the 4-connected grid energy for integer labels.
+
+    With ``at_labels`` the (H, W, 1) ``cost`` already holds each pixel's cost at
+    its label.
 
     ``kind``: 0 Potts (``weight`` per label change), 1 truncated linear
     (``weight * min(|a-b|, trunc)``), 2 the semi-global form (0, ``p1`` for a
@@ -342,7 +520,7 @@ def grid_energy_terms(labels, cost, kind, weight, trunc, p1, p2):
         p = 0.0
         for x in range(W):
             a = labels[y, x]
-            u += cost[y, x, a]
+            u += cost[y, x, 0] if at_labels else cost[y, x, a]
             for n in range(2):
                 if n == 0:
                     if x + 1 >= W:
@@ -365,63 +543,6 @@ def grid_energy_terms(labels, cost, kind, weight, trunc, p1, p2):
         unary_rows[y] = u
         pair_rows[y] = p
     return unary_rows.sum(), pair_rows.sum()
-
-
-@njit(cache=True, parallel=True)
-def mark_left_border(classes, disparity):
-    """Re-label failed pixels that map outside the right image as class 4.
-
-    A failed left pixel ``x`` takes the disparity ``d`` of the nearest consistent
-    pixel to its right (the surface it most likely belongs to, since occluded
-    background lies left of the nearer surface); if ``x - d < 0`` its match would
-    fall left of the right image: it is outside the overlap, not occluded.
-    """
-    H, W = classes.shape
-    for y in prange(H):
-        d_right = np.float32(np.nan)
-        for x in range(W - 1, -1, -1):
-            c = classes[y, x]
-            if c == 0:
-                d_right = disparity[y, x]
-            elif (c == 1 or c == 2) and d_right == d_right and x < d_right:
-                classes[y, x] = 4
-    return classes
-
-
-@njit(cache=True, parallel=True)
-def occlusion_by_step(classes, disparity, min_step):
-    """Keep a failed pixel as occluded only where the scene steps forward to its right.
-
-    In a rectified pair with the right camera at +x, the left camera alone sees
-    background just left of a nearer surface. A run of failed pixels between
-    consistent pixels with disparities ``d_left`` and ``d_right`` is therefore
-    occluded only if ``d_right - d_left >= min_step``; otherwise the failure is a
-    mismatch (low texture, repetition). Runs touching the image border keep
-    their class.
-    """
-    H, W = classes.shape
-    for y in prange(H):
-        x = 0
-        last_valid = -1
-        while x < W:
-            if classes[y, x] == 0:
-                last_valid = x
-                x += 1
-                continue
-            if classes[y, x] != 1 and classes[y, x] != 2:
-                x += 1
-                continue
-            start = x
-            while x < W and (classes[y, x] == 1 or classes[y, x] == 2):
-                x += 1
-            if last_valid < 0 or x >= W or classes[y, x] != 0:
-                continue
-            step = disparity[y, x] - disparity[y, last_valid]
-            if step < min_step:
-                for i in range(start, x):
-                    if classes[y, i] == 1:
-                        classes[y, i] = 2
-    return classes
 
 
 @njit(cache=True, parallel=True)

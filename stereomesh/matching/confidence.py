@@ -49,6 +49,27 @@ def confidence_map(
     >>> bool((c > 0.5).all())
     True
     """
+    from stereomesh.matching import _kernels
+
+    arrays = [np.ascontiguousarray(a, np.float32) for a in (c_best, c_second, lr_diff, gray)]
+    shape = arrays[3].shape
+    if any(a.shape != shape for a in arrays) or len(shape) != 2:
+        raise ValueError(f"all inputs must be one (H, W) shape, got {[a.shape for a in arrays]}")
+    return _kernels.confidence_kernel(*arrays, float(peak_ratio_scale), float(lr_sigma),
+                                      float(texture_scale))
+
+
+def confidence_map_reference(
+    c_best: np.ndarray,
+    c_second: np.ndarray,
+    lr_diff: np.ndarray,
+    gray: np.ndarray,
+    *,
+    peak_ratio_scale: float = 0.25,
+    lr_sigma: float = 1.0,
+    texture_scale: float = 4.0,
+) -> np.ndarray:
+    """:func:`confidence_map` in numpy and OpenCV, kept as the reference for the tests."""
     import cv2
 
     c1 = np.asarray(c_best, np.float32)

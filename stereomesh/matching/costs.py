@@ -54,7 +54,9 @@ def census_transform(gray: np.ndarray, window: tuple[int, int] = (7, 5)) -> np.n
         raise ValueError(f"census window {window} has more than {MAX_CENSUS_BITS} comparisons")
     from stereomesh.matching import _kernels
 
-    return _kernels.census_transform(_as_gray(gray, "gray"), win_w, win_h)
+    rw, rh = win_w // 2, win_h // 2
+    padded = _kernels.edge_padded(_as_gray(gray, "gray"), rh, rw)
+    return _kernels.census_transform(padded, win_w, win_h)
 
 
 def census_cost(

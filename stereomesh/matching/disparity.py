@@ -8,6 +8,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from stereomesh.matching.winners import Winners
 from stereomesh.params import DisparityParams, parse_disp_range
 
 OCCLUSION_CLASSES = {
@@ -84,6 +85,7 @@ def compute_disparity(
     right: np.ndarray,
     params: DisparityParams | None = None,
     progress: Callable[[str, float], None] | None = None,
+    workspace=None,
 ) -> DisparityResult:
     """Regularised disparity of a rectified pair, with occlusion classes and confidence.
 
@@ -96,6 +98,8 @@ def compute_disparity(
         Schema parameters; defaults when omitted.
     progress : callable, optional
         Called as ``progress(step_name, fraction_done)``.
+    workspace : stereomesh.matching.sgm.Workspace, optional
+        Work memory of semi-global matching to reuse across calls (many pairs).
 
     Returns
     -------
@@ -115,7 +119,7 @@ def compute_disparity(
     from stereomesh.matching import _kernels
     from stereomesh.matching.confidence import confidence_map
     from stereomesh.matching.energy import StepPenalty, grid_energy
-    from stereomesh.matching.refine import speckle_mask, subpixel_offset
+    from stereomesh.matching.refine import SUBPIXEL_METHODS, speckle_mask
 
     params = params or DisparityParams()
     report = progress or (lambda step, frac: None)
@@ -139,40 +143,40 @@ def compute_disparity(
 
     strips = row_strips(h, w, n_disp, params)
     figures["strips"] = len(strips)
-    names = ("best_k", "c1", "c2", "cm", "cp", "best_right")
-    maps = {n: np.empty((h, w), np.int32 if n.startswith("best") else np.float32) for n in names}
-    timings = {"cost": 0.0, "solver": 0.0, "select": 0.0}
-    energies = {"step": _zero_energy(), "bp": _zero_energy()}
+    if params.method == "sgm" and workspace is None:
+        from stereomesh.matching.sgm import Workspace
+
+        workspace = Workspace()  # shared by the strips
+    parts = []
+    timings = {"solver": 0.0, "energy": 0.0}
+    terms = {"step": StepPenalty(params.p1, params.p2), "bp": pairwise_term(params)}
+    energies = {key: _zero_energy() for key in terms}
     bp_info = []
     for i, (a, b, a0, b0) in enumerate(strips):
         report("disparity", 0.9 * i / len(strips))
         t = time.perf_counter()
-        cost = _cost_volume(gl[a0:b0], gr[a0:b0], d_min, n_disp, params)
-        timings["cost"] += time.perf_counter() - t
-        t = time.perf_counter()
-        volume, info = _solve(cost, gl[a0:b0], params)
-        if info:
+        winners, info = _solve(gl[a0:b0], gr[a0:b0], d_min, n_disp, params, workspace)
+        if info and params.method == "bp":
             bp_info.append(info)
+        elif info:
+            figures.update(info)
+        winners = winners.rows(a - a0, b - a0)
+        parts.append(winners)
         timings["solver"] += time.perf_counter() - t
         t = time.perf_counter()
-        out = _kernels.select_left(volume, d_min) + (_kernels.select_right(volume, d_min),)
-        del volume
-        for name, arr in zip(names, out, strict=True):
-            maps[name][a:b] = arr[a - a0 : b - a0]
         # Energy over the rows this strip owns; edges across seams are added below,
         # once the labels on both sides are final.
-        labels = np.where(maps["best_k"][a:b] >= 0, maps["best_k"][a:b], 0)
-        for key, term in (("step", StepPenalty(params.p1, params.p2)),
-                          ("bp", pairwise_term(params))):
-            e = grid_energy(labels, cost[a - a0 : b - a0], term)
+        labels = np.maximum(winners.best_k, 0)
+        for key, term in terms.items():
+            e = grid_energy(labels, winners.unary, term)
             for part in e:
                 energies[key][part] += e[part]
-        del cost
-        timings["select"] += time.perf_counter() - t
+        timings["energy"] += time.perf_counter() - t
+    maps = {f: np.concatenate([getattr(p, f) for p in parts]) if len(parts) > 1
+            else getattr(parts[0], f) for f in Winners.__dataclass_fields__}
     for a, _, _, _ in strips[1:]:
-        pair = np.where(maps["best_k"][a - 1 : a + 1] >= 0, maps["best_k"][a - 1 : a + 1], 0)
-        for key, term in (("step", StepPenalty(params.p1, params.p2)),
-                          ("bp", pairwise_term(params))):
+        pair = np.maximum(maps["best_k"][a - 1 : a + 1], 0)
+        for key, term in terms.items():
             extra = seam_pairwise(pair, term)
             energies[key]["pairwise"] += extra
             energies[key]["total"] += extra
@@ -181,14 +185,12 @@ def compute_disparity(
 
     t = time.perf_counter()
     best_k = maps["best_k"]
-    classes, lr_diff = _kernels.consistency_classes(
-        best_k, maps["best_right"], d_min, n_disp, params.lr_max_diff
+    classes, lr_diff, disparity = _kernels.refine_winners(
+        best_k, maps["best_right"], maps["c_minus"], maps["c_best"], maps["c_plus"], d_min,
+        n_disp, params.lr_max_diff, SUBPIXEL_METHODS.index(params.subpixel),
+        np.float32(max(1.0, params.lr_max_diff)),
     )
-    offset = subpixel_offset(maps["cm"], maps["c1"], maps["cp"], params.subpixel)
-    disparity = np.where(classes == 0, d_min + best_k + offset, np.nan).astype(np.float32)
-    _kernels.mark_left_border(classes, disparity)
-    _kernels.occlusion_by_step(classes, disparity, np.float32(max(1.0, params.lr_max_diff)))
-    confidence = confidence_map(maps["c1"], maps["c2"], lr_diff, gl)
+    confidence = confidence_map(maps["c_best"], maps["c_second"], lr_diff, gl)
 
     speckles = speckle_mask(disparity, params.speckle_size, params.speckle_range)
     low_conf = (classes == 0) & (confidence < params.min_confidence)
@@ -242,18 +244,36 @@ def seam_pairwise(two_rows: np.ndarray, pairwise) -> float:
 def row_strips(height: int, width: int, n_disp: int, params: DisparityParams) -> list:
     """Row strips ``(a, b, a0, b0)``: rows ``[a, b)`` kept from rows ``[a0, b0)`` solved.
 
-    The strips are sized so that the volumes of one strip fit the memory budget;
-    the overlap gives vertical and diagonal paths (or messages) room to settle
-    before the kept rows.
+    The strips are sized so that what the solver allocates for one strip fits
+    the memory budget; the overlap gives vertical and diagonal paths (or
+    messages) room to settle before the kept rows. Semi-global matching needs
+    memory growing only with the square root of the rows, so it is split only
+    for very large images.
     """
-    per_cell = {"sgm": 3, "wta": 1, "bp": 4 + 24 + 8}[params.method]
-    row_bytes = width * n_disp * per_cell
     budget = params.memory_budget_mb * 2**20
-    fit = int(budget // max(row_bytes, 1))
-    if fit >= height:
+    if params.method == "sgm":
+        from stereomesh.matching.sgm import plan_block_rows
+
+        def fits(rows):
+            return plan_block_rows(rows, width, n_disp, budget, paths=params.paths,
+                                   cost=params.cost) is not None
+    else:
+        # Bytes per (pixel, hypothesis): the cost volume of winner-takes-all;
+        # belief propagation's cost, float data, four float messages, beliefs,
+        # and their coarse levels.
+        per_cell = {"wta": 1, "bp": 4 + 24 + 8}[params.method]
+
+        def fits(rows):
+            return rows * width * n_disp * per_cell <= budget
+
+    if fits(height):
         return [(0, height, 0, height)]
+    lo, hi = 1, height
+    while lo < hi:  # the most rows that fit
+        mid = (lo + hi + 1) // 2
+        lo, hi = (mid, hi) if fits(mid) else (lo, mid - 1)
     overlap = params.tile_overlap
-    core = max(16, fit - 2 * overlap)
+    core = max(16, lo - 2 * overlap)
     strips = []
     for a in range(0, height, core):
         b = min(height, a + core)
@@ -269,22 +289,31 @@ def _cost_volume(gl, gr, d_min, n_disp, params):
     )
 
 
-def _solve(cost, gray, params):
-    """Regularised volume (lower is better) of the chosen solver, and its figures."""
+def _solve(gl, gr, d_min, n_disp, params, workspace=None):
+    """Winners of the chosen solver on one strip, and the solver's figures."""
     if params.method == "sgm":
-        from stereomesh.matching.sgm import aggregate_costs
+        from stereomesh.matching.sgm import plan_block_rows, semi_global_matching
 
-        return aggregate_costs(
-            cost, gray, p1=params.p1, p2=params.p2,
+        h, w = gl.shape
+        block_rows = plan_block_rows(h, w, n_disp, params.memory_budget_mb * 2**20,
+                                     paths=params.paths, cost=params.cost)
+        return semi_global_matching(
+            gl, gr, d_min, n_disp, cost=params.cost,
+            window=(params.census_width, params.census_height), p1=params.p1, p2=params.p2,
             p2_gradient_scale=params.p2_gradient_scale, paths=params.paths,
-        ), None
+            block_rows=block_rows, workspace=workspace,
+        ), {"block_rows": block_rows}
+    from stereomesh.matching.winners import select_winners
+
+    cost = _cost_volume(gl, gr, d_min, n_disp, params)
     if params.method == "bp":
         from stereomesh.matching.bp import belief_propagation
 
-        return belief_propagation(
+        beliefs, info = belief_propagation(
             cost, pairwise_term(params), iterations=params.bp_iterations,
             levels=params.bp_levels, tolerance=params.bp_tolerance, return_info=True,
         )
+        return select_winners(beliefs, d_min, cost), info
     if params.method == "wta":
-        return cost, None
+        return select_winners(cost, d_min, cost), None
     raise ValueError(f"unknown method {params.method!r}")

@@ -45,8 +45,9 @@ def grid_energy(labels: np.ndarray, cost: np.ndarray, pairwise: Pairwise) -> dic
     ----------
     labels : (H, W) int array
         Hypothesis index per pixel, ``0 <= labels < D``.
-    cost : (H, W, D) array
-        Unary costs.
+    cost : (H, W, D) or (H, W) array
+        Unary costs of every hypothesis, or already taken at ``labels`` (the
+        cost of each pixel at its own label; for solvers that keep no volume).
     pairwise : Potts, TruncatedLinear or StepPenalty
         The pairwise term ``V``, passed explicitly so that every solver is
         judged by the same energy.
@@ -65,9 +66,12 @@ def grid_energy(labels: np.ndarray, cost: np.ndarray, pairwise: Pairwise) -> dic
     """
     labels = np.ascontiguousarray(labels, dtype=np.int32)
     cost = np.ascontiguousarray(cost)
-    if labels.shape != cost.shape[:2]:
+    if labels.shape != cost.shape[:2] or cost.ndim not in (2, 3):
         raise ValueError(f"labels {labels.shape} do not match cost {cost.shape}")
-    if labels.size and (labels.min() < 0 or labels.max() >= cost.shape[2]):
+    at_labels = cost.ndim == 2
+    if at_labels:
+        cost = cost[..., None]
+    elif labels.size and (labels.min() < 0 or labels.max() >= cost.shape[2]):
         raise ValueError("labels must index the cost volume's last axis")
     from stereomesh.matching import _kernels
 
@@ -79,5 +83,5 @@ def grid_energy(labels: np.ndarray, cost: np.ndarray, pairwise: Pairwise) -> dic
         args = (2, 0.0, 0.0, float(pairwise.p1), float(pairwise.p2))
     else:
         raise TypeError(f"unknown pairwise term {pairwise!r}")
-    unary, pair = _kernels.grid_energy_terms(labels, cost, *args)
+    unary, pair = _kernels.grid_energy_terms(labels, cost, at_labels, *args)
     return {"unary": float(unary), "pairwise": float(pair), "total": float(unary + pair)}

@@ -4,13 +4,28 @@ Each path minimises the chain energy ``Σ C(p, d_p) + Σ V(d_p, d_q)`` with
 ``V = 0`` for equal labels, ``P1`` for a step of one and ``P2`` beyond
 (Hirschmüller 2008); the per-path costs are summed over 4 or 8 directions and
 the winner taken per pixel.
+
+:func:`semi_global_matching` is the solver the engine runs: fused, row by row,
+on 16-bit vector lanes, in memory growing with the square root of the rows.
+:func:`aggregate_costs` builds the whole summed volume the plain way; it is the
+reference the fused solver is tested against, and serves whoever needs the
+volume itself.
 """
 
 from __future__ import annotations
 
 import numpy as np
 
+from stereomesh.matching.winners import Winners
+
 MAX_P2 = 1000
+
+# Relative work of the parts of one row, measured on this project's reference
+# machine (2 cores, AVX-512): per pass, the horizontal path that lane 0 sweeps
+# over the whole row, and going up, the winner selection that lane 1 runs,
+# both against the vertical and diagonal paths of all columns (= 1). They only
+# balance the lanes; results do not depend on them.
+_HORIZONTAL_LOAD = {True: (0.29, 0.0), False: (0.23, 0.49)}
 
 
 def aggregate_costs(
@@ -75,6 +90,226 @@ def aggregate_costs(
     _kernels.aggregate_vertical(cost, gray, int(p1), int(p2), g, total, False, diag)
     _kernels.aggregate_vertical(cost, gray, int(p1), int(p2), g, total, True, diag)
     return total
+
+
+def semi_global_matching(
+    left: np.ndarray,
+    right: np.ndarray,
+    d_min: int,
+    n_disp: int,
+    *,
+    cost: str = "census",
+    window: tuple[int, int] = (7, 5),
+    p1: int = 8,
+    p2: int = 96,
+    p2_gradient_scale: float = 8.0,
+    paths: int = 8,
+    block_rows: int | None = None,
+    workspace: Workspace | None = None,
+) -> Winners:
+    """Semi-global matching of a rectified pair, straight to the winners.
+
+    The same result as :func:`aggregate_costs` followed by picking winners, in
+    ``O(sqrt(H) · W · D)`` memory instead of a volume: census costs are computed
+    a row at a time, the forward path sums are recomputed block by block from
+    checkpoints (see :mod:`._sgm_kernels`), winners of the left and the right
+    image are picked as the pass up finishes each row, and all arithmetic runs
+    on 16-bit vector lanes.
+
+    Parameters
+    ----------
+    left, right : (H, W) float arrays
+        Rectified grey images, 0–255 scale.
+    d_min, n_disp : int
+        Hypothesis ``k`` is disparity ``d_min + k``, ``0 <= k < n_disp``.
+    cost : str
+        A name from :data:`~stereomesh.matching.costs.COST_FUNCTIONS`. Census
+        runs row by row; any other cost is computed as a volume first.
+    window : (int, int)
+        Matching window ``(width, height)`` of the cost.
+    p1, p2, p2_gradient_scale, paths
+        As for :func:`aggregate_costs`.
+    block_rows : int, optional
+        Rows per recomputed block: ``H`` stores every forward sum (fastest, most
+        memory); by default the size that needs least memory
+        (:func:`best_block_rows`); :func:`plan_block_rows` picks for a budget.
+    workspace : Workspace, optional
+        Work memory to reuse across calls (fresh memory costs page faults).
+
+    Returns
+    -------
+    Winners
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> rng = np.random.default_rng(0)
+    >>> right = (rng.random((30, 60)) * 255).astype(np.float32)
+    >>> left = np.roll(right, 5, axis=1)
+    >>> w = semi_global_matching(left, right, 0, 16)
+    >>> int(np.median(w.best_k[:, 20:]))
+    5
+    """
+    from stereomesh.matching import _kernels, _sgm_kernels
+    from stereomesh.matching._simd import LANES
+    from stereomesh.matching.costs import COST_FUNCTIONS, census_transform
+
+    left = np.ascontiguousarray(left, np.float32)
+    right = np.ascontiguousarray(right, np.float32)
+    if left.ndim != 2 or left.shape != right.shape:
+        raise ValueError(f"need two grey images of one shape, got {left.shape}, {right.shape}")
+    if paths not in (4, 8):
+        raise ValueError(f"paths must be 4 or 8, got {paths}")
+    if not (0 <= p1 < p2 <= MAX_P2):
+        raise ValueError(f"need 0 <= p1 < p2 <= {MAX_P2}, got p1={p1}, p2={p2}")
+    if n_disp < 1:
+        raise ValueError(f"n_disp must be at least 1, got {n_disp}")
+    h, w = left.shape
+    dp = -(-n_disp // LANES) * LANES
+    if block_rows is None:
+        block_rows = best_block_rows(h, paths)
+    block_rows = int(min(max(1, block_rows), h))
+    if cost == "census":
+        cl = census_transform(left, window)
+        cr = census_transform(right, window)
+        crev = _kernels.reversed_padded(cr, dp)
+        volume = np.zeros((1, 1, 1), np.uint8)
+        invalid = window[0] * window[1] - 1
+        max_cost = invalid
+    else:
+        volume = np.ascontiguousarray(COST_FUNCTIONS[cost](left, right, d_min, n_disp,
+                                                           window=window))
+        cl = crev = np.zeros((h, 1), np.uint64)
+        invalid = 0
+        max_cost = int(volume.max()) if volume.size else 0
+    # Larger than any path cost can reach by more than P2: padded hypotheses stay inert.
+    pad_cost = max_cost + 2 * p2 + 1
+    # Path values never exceed the largest cost plus P2 (the step term is at
+    # most P2 above the previous minimum, which is subtracted).
+    narrow = max_cost + p2 <= 255
+    shapes = _sgm_kernels.buffer_shapes(h, w, dp, paths == 8, block_rows, narrow)
+    buffers = (workspace or Workspace()).arrays(shapes)
+    best_k, c1, c2, cm, cp, best_right = _sgm_kernels.sgm_solve(
+        cl, crev, volume, cost != "census", left, int(d_min), int(n_disp), dp, int(invalid),
+        int(pad_cost), int(p1), int(p2), float(p2_gradient_scale), paths == 8, block_rows,
+        _lane_columns(w, None), _lane_columns(w, True), _lane_columns(w, False), *buffers,
+    )
+    labels = np.maximum(best_k, 0)
+    if cost == "census":
+        unary = _sgm_kernels.census_unary(cl, cr, labels, int(d_min), float(invalid))
+    else:
+        unary = np.take_along_axis(volume, labels[..., None], axis=2)[..., 0].astype(np.float32)
+    return Winners(best_k, c1, c2, cm, cp, best_right, unary)
+
+
+class Workspace:
+    """Work memory of :func:`semi_global_matching`, kept for the next call.
+
+    Fresh memory costs a page fault per page on first use, which on some
+    machines takes longer than the matching; a caller solving many pairs (or
+    many strips) passes one workspace to every call. It grows to the largest
+    request and is released with the object.
+
+    Examples
+    --------
+    >>> ws = Workspace()
+    >>> a, b = ws.arrays([((4, 8), np.uint16), ((3,), np.uint8)])
+    >>> a.shape, b.dtype.name, a.ctypes.data % 64
+    ((4, 8), 'uint8', 0)
+    """
+
+    ALIGN = 64
+
+    def __init__(self) -> None:
+        self._buffer = np.empty(0, np.uint8)
+
+    @property
+    def nbytes(self) -> int:
+        return self._buffer.nbytes
+
+    def arrays(self, specs: list[tuple[tuple[int, ...], type]]) -> list[np.ndarray]:
+        """Arrays of the given ``(shape, dtype)``, each 64-byte aligned, in this memory."""
+        sizes = [int(np.prod(shape)) * np.dtype(dtype).itemsize for shape, dtype in specs]
+        padded = [-(-n // self.ALIGN) * self.ALIGN for n in sizes]
+        need = sum(padded) + self.ALIGN
+        if self._buffer.size < need:
+            self._buffer = np.empty(need, np.uint8)
+        start = -self._buffer.ctypes.data % self.ALIGN
+        out = []
+        for (shape, dtype), n, step in zip(specs, sizes, padded, strict=True):
+            out.append(self._buffer[start : start + n].view(dtype).reshape(shape))
+            start += step
+        return out
+
+
+def best_block_rows(height: int, paths: int = 8) -> int:
+    """Rows per recomputed block that minimise checkpoints plus block buffer.
+
+    Checkpoints hold ``ndir`` rows of path values each (3 directions from above
+    with 8 paths, 1 with 4), one per block; the block buffer holds one row of
+    sums per block row: ``(H / k) · ndir + k`` rows, least at ``k = sqrt(ndir · H)``.
+    """
+    ndir = 3 if paths == 8 else 1
+    return max(1, min(height, int(round(np.sqrt(ndir * height)))))
+
+
+def memory_bytes(height: int, width: int, n_disp: int, *, paths: int = 8,
+                 cost: str = "census", block_rows: int | None = None) -> int:
+    """Bytes :func:`semi_global_matching` allocates for an image of this size.
+
+    Work buffers, census strings, the output maps and (for costs other than
+    census) the cost volume; ``block_rows`` as for :func:`semi_global_matching`.
+    """
+    from stereomesh.matching._sgm_kernels import buffer_shapes
+    from stereomesh.matching._simd import LANES
+
+    dp = -(-n_disp // LANES) * LANES
+    k = best_block_rows(height, paths) if block_rows is None else min(block_rows, height)
+    work = sum(int(np.prod(shape)) * np.dtype(dtype).itemsize
+               for shape, dtype in buffer_shapes(height, width, dp, paths == 8, k, True))
+    pixels = height * width
+    census = pixels * 8 * 2 + height * (width + 2 * dp) * 8
+    volume = 0 if cost == "census" else pixels * n_disp
+    return work + census + volume + pixels * 4 * 7
+
+
+def plan_block_rows(height: int, width: int, n_disp: int, budget_bytes: int, *,
+                    paths: int = 8, cost: str = "census") -> int | None:
+    """Rows per block for a memory budget: all rows (fastest) if they fit, else the
+    least-memory block size, or None if even that does not fit."""
+    for k in (height, best_block_rows(height, paths)):
+        need = memory_bytes(height, width, n_disp, paths=paths, cost=cost, block_rows=k)
+        if need <= budget_bytes:
+            return k
+    return None
+
+
+def _lane_columns(width: int, forward: bool | None, lanes: int | None = None) -> np.ndarray:
+    """Column slices of the worker lanes for one pass (see ``_sgm_kernels``).
+
+    Lane 0 sweeps the horizontal path and, going up, lane 1 picks the winners;
+    the columns are shared so that every lane ends each row at the same time.
+    ``forward`` None: a pass with no horizontal path (even shares).
+    """
+    if lanes is None:
+        import numba
+
+        lanes = numba.get_num_threads()
+    lanes = max(1, min(lanes, width))
+    fixed = np.zeros(lanes)
+    if forward is not None:
+        fixed[0] += _HORIZONTAL_LOAD[forward][0]
+        fixed[min(1, lanes - 1)] += _HORIZONTAL_LOAD[forward][1]
+    # Water-fill the columns (total work 1) over the lanes' fixed loads.
+    level = (1.0 + fixed.sum()) / lanes
+    for _ in range(lanes):
+        share = np.clip(level - fixed, 0.0, None)
+        level += (1.0 - share.sum()) / max(1, int((share > 0).sum()))
+    share = np.clip(level - fixed, 0.0, None)
+    share /= share.sum()
+    bounds = np.concatenate([[0], np.rint(np.cumsum(share) * width)]).astype(np.int64)
+    bounds[-1] = width
+    return bounds
 
 
 def path_costs_reference(cost_line: np.ndarray, p1: int, p2: int) -> np.ndarray:

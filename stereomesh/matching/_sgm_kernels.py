@@ -1,0 +1,565 @@
+"""numba kernels of the fused semi-global matching solver.
+
+The solver never holds a matching-cost volume: a row of costs is computed when
+a pass reaches it, and the only image-sized buffer is the ``(H, W, Dp)`` uint16
+sum of path costs. Two passes over the rows:
+
+* forward (top to bottom): the left-to-right path and the paths arriving from
+  the row above (vertical and, with 8 paths, both diagonals); their sum is
+  written into the volume;
+* backward (bottom to top): the right-to-left path and the paths arriving from
+  the row below are added, which leaves the full sum.
+
+A third, row-parallel kernel picks winners for the left and the right image
+from the sum. All arithmetic is on 16-bit vector lanes (:mod:`._simd`).
+
+Parallel layout: in the pass over row ``r`` the columns are split into one
+slice per worker ("lane"); each lane computes the cost row and the
+vertical/diagonal paths of its columns. Lane 0 also runs the horizontal path of
+row ``r - 1`` (``r + 1`` going up) over the whole row, whose cost row the
+previous step finished; it gets fewer columns to make up for it.
+
+Padding: hypotheses ``n_disp <= k < Dp`` exist only to fill the last vector.
+Their cost ``pad_cost`` exceeds every reachable path value by more than ``P2``,
+so they never win a minimum over a real hypothesis and leave the real path
+costs exactly as without them.
+
+Neighbouring hypotheses ``k - 1`` and ``k + 1`` come from lane shifts of the
+vectors before and after (0xFFFF past the ends; the saturating add keeps it
+out of every minimum), so every load is aligned with the store that wrote it
+and store-to-load forwarding works on the horizontal path.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from numba import njit, prange
+
+from stereomesh.matching._kernels import _penalty2, _popcount64
+from stereomesh.matching._simd import (
+    LANES,
+    prefetch,
+    vadd,
+    vadds,
+    vfill_outside,
+    vhamming,
+    vhmin,
+    vlane_index,
+    vload,
+    vmax,
+    vmin,
+    vselect_between,
+    vselect_equal,
+    vselect_less,
+    vshift_in_high,
+    vshift_in_low,
+    vsplat,
+    vstore,
+    vstream,
+    vsub,
+)
+
+INF16 = 0xFFFF
+PREFETCH_AHEAD = 8
+
+
+@njit(cache=True, inline="always")
+def _cost_row(crow, r, x0, x1, cl, crev, vol, use_volume, d_min, n_disp, dp, invalid, pad_cost):
+    """Costs of left pixels ``(r, x0 .. x1 - 1)`` for all ``dp`` hypotheses, into ``crow[r & 1]``.
+
+    ``crev`` rows are the right census strings in reverse column order with
+    ``dp`` entries of padding on both sides, so that the strings of hypotheses
+    ``k .. k + LANES`` are one contiguous load.
+    """
+    W = crow.shape[0] // (2 * dp)
+    for x in range(x0, x1):
+        cb = ((r & 1) * W + x) * dp
+        if use_volume:
+            full = n_disp - n_disp % LANES
+            for o in range(0, full, LANES):
+                vstore(crow, cb + o, vload(vol, (r * W + x) * n_disp + o))
+            for k in range(full, n_disp):
+                crow[cb + k] = vol[r, x, k]
+            for k in range(n_disp, dp):
+                crow[cb + k] = pad_cost
+        else:
+            # Hypotheses whose right pixel x - d_min - k lies inside the image.
+            k_lo = max(0, x - d_min - W + 1)
+            k_hi = min(n_disp, x - d_min + 1)
+            c = cl[r, x]
+            rb = (r * crev.shape[1]) + dp + W - 1 - x + d_min
+            for o in range(0, dp, LANES):
+                v = vhamming(crev, rb + o, c)
+                v = vfill_outside(v, k_lo - o, k_hi - o, invalid)
+                v = vfill_outside(v, 0, n_disp - o, pad_cost)
+                vstore(crow, cb + o, v)
+
+
+@njit(cache=True, inline="always")
+def _path_block(cost, below, cur, above, p1v, base, sub):
+    """One semi-global recurrence step on one vector of hypotheses.
+
+    ``below``, ``cur``, ``above``: the previous pixel's path costs in the vectors
+    before, at and after this one (all-0xFFFF past the ends).
+    """
+    near = vadds(vmin(vshift_in_low(below, cur), vshift_in_high(cur, above)), p1v)
+    return vsub(vadd(cost, vmin(vmin(cur, near), base)), sub)
+
+
+@njit(cache=True, inline="always")
+def _load_path(work, index, block, nb, tail):
+    """Path values of one vector of hypotheses from ``work``.
+
+    In uint8 buffers the padded hypotheses past the ``tail`` real ones of the
+    last vector saturate at 255, which no longer keeps them out of the minimum
+    beside the last real hypothesis; they are read as 0xFFFF instead.
+    """
+    v = vload(work, index)
+    if work.itemsize == 1 and block == nb - 1 and tail < LANES:
+        v = vfill_outside(v, 0, tail, INF16)
+    return v
+
+
+@njit(cache=True, inline="always")
+def _columns(r, rs, fresh, x0, x1, mode, source, penalties, gray, ndir, crow, work, prev_off,
+             cur_off, pmin, pprev, pcur, part, fwd, fwd_row, ckpt, ckpt_min, ckpt_slot):
+    """Cost row and the non-horizontal paths of columns ``[x0, x1)`` of row ``r``.
+
+    The paths arrive from row ``rs`` (``r - 1`` or ``r + 1``) whose values are in
+    ``work`` at ``prev_off``, or with ``fresh`` start afresh (from the all-zero
+    row at the start of ``work``). ``mode`` 0 only advances the paths; 1 writes
+    their sum to the row buffer ``part[r & 1]``; 2 writes their sum plus the
+    forward sum ``fwd[fwd_row]``. With ``ckpt_slot >= 0`` the new path values are
+    also saved as checkpoint ``ckpt_slot``. ``source`` is ``(cl, crev, vol,
+    use_volume, d_min, n_disp, invalid, pad_cost)`` (see :func:`_cost_row`),
+    ``penalties`` is ``(p1, p2, g_scale)``.
+    """
+    cl, crev, vol, use_volume, d_min, n_disp, invalid, pad_cost = source
+    p1, p2, g_scale = penalties
+    W = gray.shape[1]
+    dp = crow.shape[0] // (2 * W)
+    nb = dp // LANES
+    tail = n_disp - (nb - 1) * LANES
+    p1v = vsplat(np.uint16(p1))
+    inf = vsplat(np.uint16(INF16))
+    _cost_row(crow, r, x0, x1, cl, crev, vol, use_volume, d_min, n_disp, dp, invalid, pad_cost)
+    for x in range(x0, x1):
+        cb = ((r & 1) * W + x) * dp
+        g = gray[r, x]
+        # Per direction: where its previous values are, their minimum, the penalty.
+        src0 = 0
+        m0 = 0
+        pen0 = 0
+        src1 = 0
+        m1 = 0
+        pen1 = 0
+        src2 = 0
+        m2 = 0
+        pen2 = 0
+        if not fresh:
+            src0 = prev_off + x * dp
+            m0 = np.int64(pmin[pprev, 0, x])
+            pen0 = _penalty2(p1, p2, g_scale, g, gray[rs, x])
+            if ndir == 3:
+                if x >= 1:
+                    src1 = prev_off + (W + x - 1) * dp
+                    m1 = np.int64(pmin[pprev, 1, x - 1])
+                    pen1 = _penalty2(p1, p2, g_scale, g, gray[rs, x - 1])
+                if x + 1 < W:
+                    src2 = prev_off + (2 * W + x + 1) * dp
+                    m2 = np.int64(pmin[pprev, 2, x + 1])
+                    pen2 = _penalty2(p1, p2, g_scale, g, gray[rs, x + 1])
+        base0 = vsplat(np.uint16(m0 + pen0))
+        base1 = vsplat(np.uint16(m1 + pen1))
+        base2 = vsplat(np.uint16(m2 + pen2))
+        sub0 = vsplat(np.uint16(m0))
+        sub1 = vsplat(np.uint16(m1))
+        sub2 = vsplat(np.uint16(m2))
+        mv0 = inf
+        mv1 = inf
+        mv2 = inf
+        lo0 = inf
+        lo1 = inf
+        lo2 = inf
+        at0 = _load_path(work, src0, 0, nb, tail)
+        at1 = _load_path(work, src1, 0, nb, tail)
+        at2 = _load_path(work, src2, 0, nb, tail)
+        dst = cur_off + x * dp
+        fb = (fwd_row * W + x) * dp
+        kb = ((ckpt_slot * ndir) * W + x) * dp
+        for b in range(nb):
+            o = b * LANES
+            last = b + 1 == nb
+            c = vload(crow, cb + o)
+            hi0 = inf if last else _load_path(work, src0 + o + LANES, b + 1, nb, tail)
+            l0 = _path_block(c, lo0, at0, hi0, p1v, base0, sub0)
+            vstore(work, dst + o, l0)
+            mv0 = vmin(mv0, l0)
+            lo0 = at0
+            at0 = hi0
+            acc = l0
+            if ckpt_slot >= 0:
+                vstore(ckpt, kb + o, l0)
+            if ndir == 3:
+                hi1 = inf if last else _load_path(work, src1 + o + LANES, b + 1, nb, tail)
+                l1 = _path_block(c, lo1, at1, hi1, p1v, base1, sub1)
+                vstore(work, dst + W * dp + o, l1)
+                mv1 = vmin(mv1, l1)
+                lo1 = at1
+                at1 = hi1
+                hi2 = inf if last else _load_path(work, src2 + o + LANES, b + 1, nb, tail)
+                l2 = _path_block(c, lo2, at2, hi2, p1v, base2, sub2)
+                vstore(work, dst + 2 * W * dp + o, l2)
+                mv2 = vmin(mv2, l2)
+                lo2 = at2
+                at2 = hi2
+                acc = vadd(acc, vadd(l1, l2))
+                if ckpt_slot >= 0:
+                    vstore(ckpt, kb + W * dp + o, l1)
+                    vstore(ckpt, kb + 2 * W * dp + o, l2)
+            if mode == 2:
+                acc = vadd(acc, vload(fwd, fb + o))
+                # With large blocks the forward sums come from memory: ask ahead.
+                prefetch(fwd, fb + o + PREFETCH_AHEAD * dp)
+            if mode >= 1:
+                vstore(part, cb + o, acc)
+        pmin[pcur, 0, x] = vhmin(mv0)
+        if ndir == 3:
+            pmin[pcur, 1, x] = vhmin(mv1)
+            pmin[pcur, 2, x] = vhmin(mv2)
+        if ckpt_slot >= 0:
+            for j in range(ndir):
+                ckpt_min[ckpt_slot, j, x] = pmin[pcur, j, x]
+
+
+@njit(cache=True, inline="always")
+def _select_row(r, final, d_min, n_disp, best_k, c_best, c_second, c_minus, c_plus):
+    """Left winners of row ``r`` from its summed costs in ``final[r & 1]``.
+
+    Ties go to the smallest hypothesis; ``c_second`` is the best cost at least
+    two hypotheses from the winner (inf if none); ``c_minus``/``c_plus`` equal
+    ``c_best`` at the ends of the valid range.
+
+    One pass keeps, per lane (hypotheses ``k ≡ j mod LANES``), the smallest and
+    second-smallest cost and where the smallest is. The winner is the smallest
+    ``k`` among lanes holding the overall minimum; the three excluded
+    hypotheses ``bk - 1 .. bk + 1`` fall in three different lanes, each of which
+    then offers its second-smallest cost if its smallest is the excluded one.
+    """
+    H, W = best_k.shape
+    dp = final.shape[2]
+    flat = final.reshape(-1)
+    nb = dp // LANES
+    inf = vsplat(np.uint16(INF16))
+    for x in range(W):
+        fb = ((r & 1) * W + x) * dp
+        # Hypotheses whose right pixel lies inside the image.
+        k_lo = max(0, x - W + 1 - d_min)
+        k_hi = min(n_disp, x - d_min + 1)
+        # Padded hypotheses never win, but they must not pose as a second best.
+        masked = k_lo > 0 or k_hi < dp
+        m1 = inf
+        m2 = inf
+        at = vsplat(np.uint16(0))
+        for b in range(nb):
+            o = b * LANES
+            v = vload(final, fb + o)
+            if masked:
+                v = vfill_outside(v, k_lo - o, k_hi - o, INF16)
+            at = vselect_less(v, m1, vsplat(np.uint16(o)), at)
+            m2 = vmin(m2, vmax(m1, v))
+            m1 = vmin(m1, v)
+        bv = vhmin(m1)
+        k_of_min = vadd(at, vlane_index(0))
+        bk = np.int64(vhmin(vselect_equal(m1, vsplat(bv), k_of_min, inf)))
+        second = vhmin(vselect_between(k_of_min, bk - 1, bk + 2, m2, m1))
+        if k_hi <= k_lo:
+            best_k[r, x] = -1
+            c_best[r, x] = 0.0
+            c_second[r, x] = 0.0
+            c_minus[r, x] = 0.0
+            c_plus[r, x] = 0.0
+        else:
+            best_k[r, x] = bk
+            c_best[r, x] = bv
+            c_second[r, x] = np.inf if second == INF16 else np.float32(second)
+            c_minus[r, x] = flat[fb + bk - 1] if bk > k_lo else bv
+            c_plus[r, x] = flat[fb + bk + 1] if bk < k_hi - 1 else bv
+
+
+@njit(cache=True, inline="always")
+def _horizontal(r, forward, gray, p1, p2, g_scale, crow, part, hbuf, out, out_row):
+    """The horizontal path of row ``r``, added to the other paths in ``part[r & 1]``.
+
+    The sum goes to row ``out_row`` of ``out`` (the forward sums of a block
+    going down, the final sums of two rows going up). ``hbuf`` holds an
+    all-zero row (where the path starts afresh) and two ping-pong rows.
+    """
+    W = gray.shape[1]
+    dp = crow.shape[0] // (2 * W)
+    nb = dp // LANES
+    p1v = vsplat(np.uint16(p1))
+    inf = vsplat(np.uint16(INF16))
+    prev = dp
+    cur = 2 * dp
+    m = 0
+    for i in range(W):
+        x = i if forward else W - 1 - i
+        cb = ((r & 1) * W + x) * dp
+        ob = (out_row * W + x) * dp
+        if i == 0:
+            src = 0
+            m = 0
+            pen = 0
+        else:
+            src = prev
+            pen = _penalty2(p1, p2, g_scale, gray[r, x], gray[r, x - 1 if forward else x + 1])
+        base = vsplat(np.uint16(m + pen))
+        sub = vsplat(np.uint16(m))
+        mv = inf
+        lo = inf
+        at = vload(hbuf, src)
+        for b in range(nb):
+            o = b * LANES
+            hi = inf if b + 1 == nb else vload(hbuf, src + o + LANES)
+            lv = _path_block(vload(crow, cb + o), lo, at, hi, p1v, base, sub)
+            vstore(hbuf, cur + o, lv)
+            mv = vmin(mv, lv)
+            if forward:
+                # Read again only a block of rows later: past the caches.
+                vstream(out, ob + o, vadd(vload(part, cb + o), lv))
+            else:
+                vstore(out, ob + o, vadd(vload(part, cb + o), lv))
+            lo = at
+            at = hi
+        m = np.int64(vhmin(mv))
+        prev, cur = cur, prev
+
+
+@njit(cache=True, inline="always")
+def _right_winners(r, final, d_min, n_disp, rmin, rarg, best_right):
+    """Right-image winners of row ``r`` from its final sums ``final[r & 1]``.
+
+    Right pixel ``xr`` takes the hypothesis ``k`` minimising the sum at left pixel
+    ``xr + d_min + k`` (smallest ``k`` on ties; -1 if none is valid). The
+    minima are gathered along diagonals into buffers indexed
+    ``jj = W - 1 - x + k``, so every access is a contiguous vector; pixels are
+    visited ``LANES`` apart so that each load meets the aligned store before it.
+    """
+    H, W = best_right.shape
+    dp = final.shape[2]
+    nb = dp // LANES
+    row = (r & 1) * W * dp
+    rmin[:] = INF16
+    rarg[:] = INF16
+    for phase in range(LANES):
+        for x in range(phase, W, LANES):
+            fb = row + x * dp
+            jb = W - 1 - x
+            for b in range(nb):
+                o = b * LANES
+                vstore(rmin, jb + o, vmin(vload(rmin, jb + o), vload(final, fb + o)))
+    for phase in range(LANES):
+        for x in range(phase, W, LANES):
+            fb = row + x * dp
+            jb = W - 1 - x
+            for b in range(nb):
+                o = b * LANES
+                hit = vselect_equal(vload(final, fb + o), vload(rmin, jb + o), vlane_index(o),
+                                    vsplat(np.uint16(INF16)))
+                vstore(rarg, jb + o, vmin(vload(rarg, jb + o), hit))
+    for xr in range(W):
+        jj = W - 1 - xr - d_min
+        k = np.int64(rarg[jj]) if 0 <= jj < rarg.shape[0] else -1
+        best_right[r, xr] = k if 0 <= k < n_disp else -1
+
+
+# Fields of one step of the schedule (one parallel region).
+_PHASE, _COLS, _FROM, _FRESH, _MODE, _FWD_ROW, _SAVE, _HORIZ, _HORIZ_OUT, _SELECT, _LOAD, \
+    _PARITY = range(12)
+_PASS1, _DOWN, _UP = range(3)
+
+
+@njit(cache=True)
+def _schedule(H, block_rows):
+    """The steps of :func:`sgm_solve`, one row of ints per parallel region.
+
+    Pass 1 goes down to the last checkpoint, saving one at the end of every
+    block. Then, block by block from the bottom, the block's forward sums are
+    recomputed from its checkpoint (``_DOWN`` steps, the horizontal path one row
+    behind the others) and the pass up crosses the block (``_UP`` steps, the
+    horizontal path one row behind, the winners two rows behind; they catch up
+    in the next block, or in two last steps).
+    """
+    n_blocks = (H + block_rows - 1) // block_rows
+    n = (n_blocks - 1) * block_rows + H + n_blocks + H + 2
+    steps = np.full((n, 12), -1, np.int64)
+    i = 0
+    parity = 0
+    for r in range((n_blocks - 1) * block_rows):
+        steps[i, _PHASE] = _PASS1
+        steps[i, _COLS] = r
+        steps[i, _FROM] = r - 1
+        steps[i, _FRESH] = r == 0
+        steps[i, _MODE] = 0
+        steps[i, _SAVE] = (r + 1) // block_rows - 1 if (r + 1) % block_rows == 0 else -1
+        steps[i, _PARITY] = parity
+        parity = 1 - parity
+        i += 1
+    up_parity = 0
+    for block in range(n_blocks - 1, -1, -1):
+        a = block * block_rows
+        b = min(H, a + block_rows)
+        parity = 0
+        for step in range(b - a + 1):
+            r = a + step
+            steps[i, _PHASE] = _DOWN
+            steps[i, _PARITY] = parity
+            if step == 0 and block > 0:
+                steps[i, _LOAD] = block - 1
+            if r < b:
+                steps[i, _COLS] = r
+                steps[i, _FROM] = r - 1
+                steps[i, _FRESH] = r == 0
+                steps[i, _MODE] = 1
+            if r > a:
+                steps[i, _HORIZ] = r - 1
+                steps[i, _HORIZ_OUT] = r - 1 - a
+            parity = 1 - parity
+            i += 1
+        extra = 2 if block == 0 else 0
+        for step in range(b - a + extra):
+            r = b - 1 - step
+            steps[i, _PHASE] = _UP
+            steps[i, _PARITY] = up_parity
+            if r >= a:
+                steps[i, _COLS] = r
+                steps[i, _FROM] = r + 1
+                steps[i, _FRESH] = r == H - 1
+                steps[i, _MODE] = 2
+                steps[i, _FWD_ROW] = r - a
+            if 0 <= r + 1 < H:
+                steps[i, _HORIZ] = r + 1
+                steps[i, _HORIZ_OUT] = (r + 1) & 1
+            if 0 <= r + 2 < H:
+                steps[i, _SELECT] = r + 2
+            up_parity = 1 - up_parity
+            i += 1
+    return steps[:i]
+
+
+def buffer_shapes(H, W, dp, diagonals, block_rows, narrow_paths):
+    """``(shape, dtype)`` of the work buffers :func:`sgm_solve` takes, in its argument order.
+
+    With ``narrow_paths`` the path values (and their checkpoints) are kept in
+    uint8, which halves the memory they stream through; callers ensure that
+    every real path value fits (matching cost + P2 <= 255).
+    """
+    ndir = 3 if diagonals else 1
+    n_ckpt = max((H + block_rows - 1) // block_rows - 1, 1)
+    path = np.uint8 if narrow_paths else np.uint16
+    work = (dp + 2 * ndir * W * dp,)
+    row2 = (2 * W * dp,)
+    return [(work, path), (work, path), ((n_ckpt, ndir, W, dp), path),
+            ((n_ckpt, ndir, W), np.uint16), ((block_rows, W, dp), np.uint16),
+            ((2, W, dp), np.uint16), (row2, np.uint16), (row2, np.uint16), (row2, np.uint16),
+            (row2, np.uint16)]
+
+
+@njit(cache=True, parallel=True)
+def sgm_solve(cl, crev, vol, use_volume, gray, d_min, n_disp, dp, invalid, pad_cost, p1, p2,
+              g_scale, diagonals, block_rows, bounds_even, bounds_down, bounds_up, work_down,
+              work_up, ckpt, ckpt_min, fwd, final, crow_down, crow_up, part_down, part_up):
+    """Semi-global matching with 4 or 8 paths and the winners of both images.
+
+    Costs come from census strings (``cl``, (H, W) uint64, and ``crev``, the
+    right strings in reverse column order padded by ``dp`` on both sides) or,
+    with ``use_volume``, from the (H, W, n_disp) uint8 volume ``vol``.
+    ``bounds_*`` hold the column slices of the lanes in the first pass and in
+    the passes down and up (T + 1 increasing ints from 0 to W). The uint16
+    work buffers have the shapes :func:`buffer_shapes` gives.
+
+    Memory is ``O(sqrt(H) · W · dp)``: the rows form blocks of ``block_rows``. A
+    first pass down saves the state of the paths from above at the end of every
+    block (a checkpoint). Then, block by block from the bottom, the forward
+    sums of the block are recomputed from its checkpoint into a block buffer,
+    and the pass up adds the paths from below and picks the winners (see
+    :func:`_schedule`). The result is exactly that of storing every forward sum.
+
+    Returns ``best_k`` (int32, -1 where no hypothesis is valid), ``c_best``,
+    ``c_second``, ``c_minus``, ``c_plus`` (float32, see :func:`_select_row`)
+    and ``best_right`` (int32, see :func:`_right_winners`).
+    """
+    H, W = gray.shape
+    ndir = 3 if diagonals else 1
+    lanes = bounds_down.shape[0] - 1
+    half = ndir * W * dp
+    # Path values: [zero row][previous rows of each direction][current rows of each direction]
+    work_down[:dp] = 0
+    work_up[:dp] = 0
+    pmin_down = np.zeros((2, ndir, W), np.uint16)
+    pmin_up = np.zeros((2, ndir, W), np.uint16)
+    hbuf = np.zeros(3 * dp, np.uint16)
+    rmin = np.empty(W + dp, np.uint16)
+    rarg = np.empty(W + dp, np.uint16)
+    best_k = np.empty((H, W), np.int32)
+    c_best = np.empty((H, W), np.float32)
+    c_second = np.empty((H, W), np.float32)
+    c_minus = np.empty((H, W), np.float32)
+    c_plus = np.empty((H, W), np.float32)
+    best_right = np.empty((H, W), np.int32)
+    right_lane = min(1, lanes - 1)
+    source = (cl, crev, vol, use_volume, d_min, n_disp, invalid, pad_cost)
+    penalties = (p1, p2, g_scale)
+    steps = _schedule(H, block_rows)
+    for i in range(steps.shape[0]):
+        st = steps[i]
+        up = st[_PHASE] == _UP
+        work = work_up if up else work_down
+        pmin = pmin_up if up else pmin_down
+        crow = crow_up if up else crow_down
+        part = part_up if up else part_down
+        bounds = bounds_up if up else bounds_down
+        if st[_PHASE] == _PASS1:
+            bounds = bounds_even
+        out = final if up else fwd
+        parity = st[_PARITY]
+        if st[_LOAD] >= 0:
+            # Resume the paths from above at the checkpoint of this block.
+            slot = st[_LOAD]
+            for t in prange(lanes):
+                for j in range(ndir):
+                    for x in range(bounds[t], bounds[t + 1]):
+                        start = dp + (j * W + x) * dp
+                        for k in range(dp):
+                            work[start + k] = ckpt[slot, j, x, k]
+                        pmin[parity, j, x] = ckpt_min[slot, j, x]
+        for t in prange(lanes):
+            if st[_COLS] >= 0:
+                _columns(st[_COLS], st[_FROM], st[_FRESH] == 1, bounds[t], bounds[t + 1],
+                         st[_MODE], source, penalties, gray, ndir, crow, work,
+                         dp + parity * half, dp + (1 - parity) * half, pmin, parity, 1 - parity,
+                         part, fwd, st[_FWD_ROW], ckpt, ckpt_min, st[_SAVE])
+            if t == 0 and st[_HORIZ] >= 0:
+                _horizontal(st[_HORIZ], not up, gray, p1, p2, g_scale, crow, part, hbuf, out,
+                            st[_HORIZ_OUT])
+            if t == right_lane and st[_SELECT] >= 0:
+                _select_row(st[_SELECT], final, d_min, n_disp, best_k, c_best, c_second,
+                            c_minus, c_plus)
+                _right_winners(st[_SELECT], final, d_min, n_disp, rmin, rarg, best_right)
+    return best_k, c_best, c_second, c_minus, c_plus, best_right
+
+
+@njit(cache=True, parallel=True)
+def census_unary(cl, cr, labels, d_min, invalid):
+    """Census cost of each pixel at its label (the unary term of the energy)."""
+    H, W = labels.shape
+    out = np.empty((H, W), np.float32)
+    for y in prange(H):
+        for x in range(W):
+            xr = x - (d_min + labels[y, x])
+            if 0 <= xr < W:
+                out[y, x] = _popcount64(cl[y, x] ^ cr[y, xr])
+            else:
+                out[y, x] = invalid
+    return out
