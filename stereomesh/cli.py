@@ -58,6 +58,8 @@ def _build_parser() -> argparse.ArgumentParser:
     p.add_argument("right", type=Path, help="right image")
     p.add_argument("--calib", type=Path, required=True, help="calibration JSON")
     p.add_argument("--config", type=Path, help="TOML file of parameters")
+    p.add_argument("--previews", action="store_true",
+                   help="also write preview PNGs (rectified pair, disparity, confidence, classes)")
     common(p)
     add_cli_arguments(p.add_argument_group("disparity parameters"), ("disparity",))
 
@@ -91,7 +93,8 @@ def _cmd_disparity(args) -> int:
     params = _params(args, ("disparity",))
     progress, close = _progress_bar(args.quiet)
     try:
-        report = run_disparity([args.left, args.right], args.calib, args.out, params, progress)
+        report = run_disparity([args.left, args.right], args.calib, args.out, params, progress,
+                               previews=args.previews)
     finally:
         close()
     if not args.quiet:

@@ -174,8 +174,9 @@ def run_disparity(
     params: Params,
     progress: Progress | None = None,
     command: str = "disparity",
+    previews: bool = False,
 ) -> dict:
-    """The ``stereomesh disparity`` job: disparity outputs and the report."""
+    """The ``stereomesh disparity`` job: disparity outputs, the report, optional previews."""
     progress = progress or (lambda step, frac: None)
     out_dir = Path(out_dir)
     pair = load_pair(inputs, calib)
@@ -185,7 +186,8 @@ def run_disparity(
     try:
         result = disparity_stage(pair, params, report, progress)
         write_disparity_outputs(out_dir, result, report)
-        _disparity_previews(out_dir, pair, result, report)
+        if previews:
+            _disparity_previews(out_dir, pair, result, report)
     except Exception:
         report.warn("failed: " + traceback.format_exc(limit=3).strip().splitlines()[-1])
         report.finish(out_dir / "report.json", status="failed")

@@ -80,8 +80,8 @@ def test_lane_split_and_workspace_do_not_change_the_result():
     # lanes and a reused workspace must give the same bits.
     left, right = _pair(26, 70, seed=3)
     d_min, n_disp, dp = -2, 30, 32
-    cl = census_transform(left)
-    crev = _kernels.reversed_padded(census_transform(right), dp)
+    cl = _kernels.census_planes(census_transform(left), 3, 0, False)
+    crev = _kernels.census_planes(census_transform(right), 3, dp, True)
     ws = Workspace()
     results = []
     for lanes, block_rows in ((1, 26), (2, 5), (3, 7), (5, 26)):
@@ -105,13 +105,13 @@ def test_memory_grows_with_the_square_root_of_the_rows():
 
 
 @njit(cache=True)
-def _simd_probe(a16, a64, out, lo, hi, bits):
+def _simd_probe(a16, planes, out, lo, hi, bits):
     v = vload(a16, 0)
     w = vload(a16, LANES)
     vstore(out, 0, vshift_in_low(v, w))
     vstore(out, LANES, vshift_in_high(v, w))
     vstore(out, 2 * LANES, vfill_outside(v, lo, hi, 0xFFFF))
-    vstore(out, 4 * LANES, vhamming(a64, 0, bits))
+    vstore(out, 4 * LANES, vhamming(planes, 0, bits))
     vstore(out, 5 * LANES, vselect_between(v, lo, hi, w, v))
     return vhmin(v)
 
@@ -119,8 +119,8 @@ def _simd_probe(a16, a64, out, lo, hi, bits):
 def test_simd_intrinsics_against_numpy():
     rng = np.random.default_rng(0)
     a16 = rng.integers(0, 60000, 2 * LANES).astype(np.uint16)
-    a64 = rng.integers(0, 2**63, LANES, dtype=np.uint64)
-    bits = np.uint64(0x5A5A_0F0F_3C3C_FFFF)
+    a64 = rng.integers(0, 2**16, LANES).astype(np.uint16)
+    bits = np.uint16(0x5A3C)
     lo, hi = 5, 20
     out = np.zeros(6 * LANES, np.uint16)
     smallest = _simd_probe(a16, a64, out, lo, hi, bits)

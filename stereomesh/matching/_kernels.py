@@ -38,13 +38,19 @@ def edge_padded(image, pad_rows, pad_cols):
 
 
 @njit(cache=True, parallel=True)
-def reversed_padded(rows, pad):
-    """Each row in reverse column order with ``pad`` zeros on both sides."""
-    H, W = rows.shape
-    out = np.zeros((H, W + 2 * pad), rows.dtype)
+def census_planes(strings, planes, pad, reverse):
+    """Census strings split into 16-bit planes, ``(planes, H, W + 2 * pad)`` uint16.
+
+    Plane ``p`` holds bits ``16 p .. 16 p + 15``; with ``reverse`` each row is in
+    reverse column order; ``pad`` zero columns on both sides.
+    """
+    H, W = strings.shape
+    out = np.zeros((planes, H, W + 2 * pad), np.uint16)
     for y in prange(H):
         for x in range(W):
-            out[y, pad + x] = rows[y, W - 1 - x]
+            s = strings[y, W - 1 - x if reverse else x]
+            for p in range(planes):
+                out[p, y, pad + x] = np.uint16((s >> np.uint64(16 * p)) & np.uint64(0xFFFF))
     return out
 
 

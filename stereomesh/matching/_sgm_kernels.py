@@ -67,9 +67,11 @@ PREFETCH_AHEAD = 8
 def _cost_row(crow, r, x0, x1, cl, crev, vol, use_volume, d_min, n_disp, dp, invalid, pad_cost):
     """Costs of left pixels ``(r, x0 .. x1 - 1)`` for all ``dp`` hypotheses, into ``crow[r & 1]``.
 
-    ``crev`` rows are the right census strings in reverse column order with
-    ``dp`` entries of padding on both sides, so that the strings of hypotheses
-    ``k .. k + LANES`` are one contiguous load.
+    Census strings come as 16-bit planes (``cl``: ``(P, H, W)``; ``crev``: the
+    right strings in reverse column order with ``dp`` zero columns on both
+    sides, ``(P, H, W + 2 dp)``), so that the strings of hypotheses
+    ``k .. k + LANES`` are one contiguous load per plane and their Hamming
+    distances one vector popcount each.
     """
     W = crow.shape[0] // (2 * dp)
     for x in range(x0, x1):
@@ -86,10 +88,12 @@ def _cost_row(crow, r, x0, x1, cl, crev, vol, use_volume, d_min, n_disp, dp, inv
             # Hypotheses whose right pixel x - d_min - k lies inside the image.
             k_lo = max(0, x - d_min - W + 1)
             k_hi = min(n_disp, x - d_min + 1)
-            c = cl[r, x]
-            rb = (r * crev.shape[1]) + dp + W - 1 - x + d_min
+            planes, H, wide = crev.shape
+            rb = dp + W - 1 - x + d_min
             for o in range(0, dp, LANES):
-                v = vhamming(crev, rb + o, c)
+                v = vhamming(crev, r * wide + rb + o, cl[0, r, x])
+                for p in range(1, planes):
+                    v = vadd(v, vhamming(crev, (p * H + r) * wide + rb + o, cl[p, r, x]))
                 v = vfill_outside(v, k_lo - o, k_hi - o, invalid)
                 v = vfill_outside(v, 0, n_disp - o, pad_cost)
                 vstore(crow, cb + o, v)
@@ -358,16 +362,14 @@ def _right_winners(r, final, d_min, n_disp, rmin, rarg, best_right):
             jb = W - 1 - x
             for b in range(nb):
                 o = b * LANES
-                vstore(rmin, jb + o, vmin(vload(rmin, jb + o), vload(final, fb + o)))
-    for phase in range(LANES):
-        for x in range(phase, W, LANES):
-            fb = row + x * dp
-            jb = W - 1 - x
-            for b in range(nb):
-                o = b * LANES
-                hit = vselect_equal(vload(final, fb + o), vload(rmin, jb + o), vlane_index(o),
-                                    vsplat(np.uint16(INF16)))
-                vstore(rarg, jb + o, vmin(vload(rarg, jb + o), hit))
+                v = vload(final, fb + o)
+                m = vload(rmin, jb + o)
+                a = vload(rarg, jb + o)
+                k = vlane_index(o)
+                # A smaller sum takes the pixel; an equal one keeps the smaller hypothesis.
+                a = vselect_less(v, m, k, vselect_equal(v, m, vmin(a, k), a))
+                vstore(rarg, jb + o, a)
+                vstore(rmin, jb + o, vmin(m, v))
     for xr in range(W):
         jj = W - 1 - xr - d_min
         k = np.int64(rarg[jj]) if 0 <= jj < rarg.shape[0] else -1
@@ -472,8 +474,8 @@ def sgm_solve(cl, crev, vol, use_volume, gray, d_min, n_disp, dp, invalid, pad_c
               work_up, ckpt, ckpt_min, fwd, final, crow_down, crow_up, part_down, part_up):
     """Semi-global matching with 4 or 8 paths and the winners of both images.
 
-    Costs come from census strings (``cl``, (H, W) uint64, and ``crev``, the
-    right strings in reverse column order padded by ``dp`` on both sides) or,
+    Costs come from census strings in 16-bit planes (``cl`` and ``crev``, see
+    :func:`_cost_row`) or,
     with ``use_volume``, from the (H, W, n_disp) uint8 volume ``vol``.
     ``bounds_*`` hold the column slices of the lanes in the first pass and in
     the passes down and up (T + 1 increasing ints from 0 to W). The uint16

@@ -90,27 +90,20 @@ def vload(typingctx, array, index):
 
 @intrinsic
 def vhamming(typingctx, array, index, bits):
-    """Hamming distances ``popcount(array.flat[index + i] ^ bits)`` of a uint64 array."""
-    if not isinstance(array, types.Array) or array.dtype != types.uint64:
+    """Hamming distances ``popcount(array.flat[index + i] ^ bits)`` of a uint16 array."""
+    if not isinstance(array, types.Array) or array.dtype != types.uint16:
         return None
-    sig = u16vec(array, types.intp, types.uint64)
+    if not isinstance(bits, types.Integer):
+        return None
+    sig = u16vec(array, types.intp, bits)
 
     def codegen(context, builder, signature, args):
         ptr = _element_pointer(context, builder, signature.args[0], args[0], args[1])
-        wide = ir.VectorType(ir.IntType(64), LANES)
-        vec = builder.load(builder.bitcast(ptr, wide.as_pointer()), align=8)
-        mixed = builder.xor(vec, _splat_any(builder, args[2], wide))
-        counts = _call(builder, f"llvm.ctpop.v{LANES}i64", wide, mixed)
-        return builder.trunc(counts, _VEC)
+        vec = builder.load(builder.bitcast(ptr, _VEC.as_pointer()), align=2)
+        mixed = builder.xor(vec, _splat(builder, _to_i16(builder, args[2], signature.args[2])))
+        return _call(builder, f"llvm.ctpop.v{LANES}i16", _VEC, mixed)
 
     return sig, codegen
-
-
-def _splat_any(builder, scalar, vector_type):
-    vec = builder.insert_element(ir.Constant(vector_type, ir.Undefined), scalar,
-                                 ir.Constant(_I32, 0))
-    zeros = ir.Constant(ir.VectorType(_I32, LANES), [0] * LANES)
-    return builder.shuffle_vector(vec, ir.Constant(vector_type, ir.Undefined), zeros)
 
 
 @intrinsic

@@ -172,14 +172,16 @@ def semi_global_matching(
     if cost == "census":
         cl = census_transform(left, window)
         cr = census_transform(right, window)
-        crev = _kernels.reversed_padded(cr, dp)
-        volume = np.zeros((1, 1, 1), np.uint8)
         invalid = window[0] * window[1] - 1
+        planes = -(-invalid // 16)
+        left_planes = _kernels.census_planes(cl, planes, 0, False)
+        right_planes = _kernels.census_planes(cr, planes, dp, True)
+        volume = np.zeros((1, 1, 1), np.uint8)
         max_cost = invalid
     else:
         volume = np.ascontiguousarray(COST_FUNCTIONS[cost](left, right, d_min, n_disp,
                                                            window=window))
-        cl = crev = np.zeros((h, 1), np.uint64)
+        left_planes = right_planes = np.zeros((1, 1, 1), np.uint16)
         invalid = 0
         max_cost = int(volume.max()) if volume.size else 0
     # Larger than any path cost can reach by more than P2: padded hypotheses stay inert.
@@ -190,9 +192,10 @@ def semi_global_matching(
     shapes = _sgm_kernels.buffer_shapes(h, w, dp, paths == 8, block_rows, narrow)
     buffers = (workspace or Workspace()).arrays(shapes)
     best_k, c1, c2, cm, cp, best_right = _sgm_kernels.sgm_solve(
-        cl, crev, volume, cost != "census", left, int(d_min), int(n_disp), dp, int(invalid),
-        int(pad_cost), int(p1), int(p2), float(p2_gradient_scale), paths == 8, block_rows,
-        _lane_columns(w, None), _lane_columns(w, True), _lane_columns(w, False), *buffers,
+        left_planes, right_planes, volume, cost != "census", left, int(d_min), int(n_disp), dp,
+        int(invalid), int(pad_cost), int(p1), int(p2), float(p2_gradient_scale), paths == 8,
+        block_rows, _lane_columns(w, None), _lane_columns(w, True), _lane_columns(w, False),
+        *buffers,
     )
     labels = np.maximum(best_k, 0)
     if cost == "census":
@@ -268,7 +271,8 @@ def memory_bytes(height: int, width: int, n_disp: int, *, paths: int = 8,
     work = sum(int(np.prod(shape)) * np.dtype(dtype).itemsize
                for shape, dtype in buffer_shapes(height, width, dp, paths == 8, k, True))
     pixels = height * width
-    census = pixels * 8 * 2 + height * (width + 2 * dp) * 8
+    # Census strings (uint64) and their 16-bit planes (up to 4).
+    census = pixels * 8 * 2 + 4 * 2 * (pixels + height * (width + 2 * dp))
     volume = 0 if cost == "census" else pixels * n_disp
     return work + census + volume + pixels * 4 * 7
 
