@@ -1,23 +1,37 @@
 """Disparity benchmark: ours (sgm, bp, wta) against OpenCV StereoSGBM in the same run.
 
-Pairs: scikit-image's ``stereo_motorcycle`` (Middlebury 2014, Scharstein et al.,
-GCPR 2014, downscaled by scikit-image) and the demo pair in ``demo_data/``.
+Accuracy pairs: scikit-image's ``stereo_motorcycle`` (Middlebury 2014,
+Scharstein et al., GCPR 2014, downscaled by scikit-image) and the demo pair in
+``demo_data/`` (non-occluded pixels). Speed pair: the demo scene rendered at
+1368 x 1026 (1.4 megapixels) with 256 disparities, written to a temporary folder.
+
 OpenCV settings as the disparity issue fixes them: blockSize 5, P1 = 8·3·25,
 P2 = 32·3·25, uniquenessRatio 10, speckle window 100 / range 2, disp12MaxDiff 1,
 the same number of disparities as ours.
 
-Printed per pair and method: time ratio to OpenCV MODE_SGBM (in-process, kernels
-warm), density (share of ground-truth pixels with an output), bad-2.0 on output
-pixels, bad-2.0 at OpenCV MODE_SGBM's density using our confidence ranking, mean
-absolute error, area under the sparsification curve, and, as whole commands,
-wall time ratio and peak RSS of ``stereomesh disparity`` against a small script
-that runs OpenCV on the same files. Cold JIT compilation is reported apart.
+Printed:
 
-Run: ``.venv/bin/python benchmarks/disparity.py`` (``make bench``).
+- per accuracy pair and method: density (share of ground-truth pixels with an
+  output), bad-2.0 on output pixels, bad-2.0 at OpenCV MODE_SGBM's density using
+  our confidence ranking, mean absolute error, area under the sparsification
+  curve;
+- on the 1.4 MP pair, in-process (kernels compiled, each solver's object or
+  work memory reused across repetitions, as a caller matching many pairs would),
+  the time of ``compute_disparity`` (cost, solver, left-right check,
+  sub-pixel, confidence, speckles) against OpenCV MODE_SGBM and
+  MODE_SGBM_3WAY, each ratio taken against the OpenCV run next to it;
+- whole commands on the 1.4 MP pair: ``stereomesh disparity`` against a small
+  script running OpenCV MODE_SGBM on the same files, wall time and peak RSS,
+  alternated, median of the ratios;
+- cold JIT compilation, apart.
+
+Run: ``.venv/bin/python benchmarks/disparity.py`` (``make bench``); ``--quick``
+skips the whole-command and belief-propagation timings.
 """
 
 from __future__ import annotations
 
+import argparse
 import json
 import os
 import subprocess
@@ -48,28 +62,23 @@ d[d < int(lo)] = np.nan
 cv2.imwrite(out, d)
 """
 
+MODES = ("sgbm", "hh", "3way")
 
-def opencv_disparity(left, right, lo, hi, mode):
+
+def opencv_matcher(lo, hi, mode):
     import cv2
 
     m = {"sgbm": cv2.STEREO_SGBM_MODE_SGBM, "hh": cv2.STEREO_SGBM_MODE_HH,
          "3way": cv2.STEREO_SGBM_MODE_SGBM_3WAY}[mode]
-    s = cv2.StereoSGBM_create(lo, hi - lo, 5, 8 * 3 * 25, 32 * 3 * 25, 1, 0, 10, 100, 2, m)
+    return cv2.StereoSGBM_create(lo, hi - lo, 5, 8 * 3 * 25, 32 * 3 * 25, 1, 0, 10, 100, 2, m)
+
+
+def opencv_disparity(matcher, left, right, lo):
     bgr_l = np.ascontiguousarray(left[..., ::-1])
     bgr_r = np.ascontiguousarray(right[..., ::-1])
-    d = s.compute(bgr_l, bgr_r).astype(np.float32) / 16.0
+    d = matcher.compute(bgr_l, bgr_r).astype(np.float32) / 16.0
     d[d < lo] = np.nan
     return d
-
-
-def timed(fn, repeat=3):
-    best = np.inf
-    out = None
-    for _ in range(repeat):
-        t = time.perf_counter()
-        out = fn()
-        best = min(best, time.perf_counter() - t)
-    return best, out
 
 
 def measure(disp, gt, conf=None, target_density=None):
@@ -114,21 +123,20 @@ def run_command(args):
     return float(wall), int(rss_kb) / 1024.0
 
 
-def pairs():
+def accuracy_pairs():
     from PIL import Image
     from skimage import data
 
     left, right, gt = data.stereo_motorcycle()
     yield "motorcycle", left, right, np.where(np.isfinite(gt), gt, np.nan), (0, 80)
     demo = REPO / "demo_data"
-    if (demo / "gt_disparity.pfm").is_file():
-        from stereomesh.io.pfm import read_pfm
+    from stereomesh.io.pfm import read_pfm
 
-        occ = np.asarray(Image.open(demo / "gt_occlusion.png")) > 0
-        gtd = read_pfm(demo / "gt_disparity.pfm")
-        gtd[occ] = np.nan  # judged on non-occluded pixels
-        yield ("demo", np.asarray(Image.open(demo / "left.png").convert("RGB")),
-               np.asarray(Image.open(demo / "right.png").convert("RGB")), gtd, (64, 192))
+    occ = np.asarray(Image.open(demo / "gt_occlusion.png")) > 0
+    gtd = read_pfm(demo / "gt_disparity.pfm")
+    gtd[occ] = np.nan  # judged on non-occluded pixels
+    yield ("demo", np.asarray(Image.open(demo / "left.png").convert("RGB")),
+           np.asarray(Image.open(demo / "right.png").convert("RGB")), gtd, (64, 192))
 
 
 def cold_jit_seconds():
@@ -143,52 +151,130 @@ def cold_jit_seconds():
     return float(out.stdout.strip().splitlines()[-1])
 
 
-def main():
-    print(f"cold JIT compile (fresh cache, tiny pair): {cold_jit_seconds():.1f} s")
-    rows = []
-    tmp = Path(tempfile.mkdtemp())
-    for name, left, right, gt, (lo, hi) in pairs():
-        t_cv, d_cv = timed(lambda: opencv_disparity(left, right, lo, hi, "sgbm"))  # noqa: B023
-        cv_row = measure(d_cv, gt)
-        results = {"opencv sgbm": (t_cv, cv_row)}
-        t_hh, d_hh = timed(lambda: opencv_disparity(left, right, lo, hi, "hh"), 1)  # noqa: B023
-        results["opencv hh"] = (t_hh, measure(d_hh, gt))
-        for method, cost in (("sgm", "census"), ("sgm", "ad_gradient"), ("bp", "census"),
-                             ("wta", "census")):
-            p = DisparityParams(method=method, cost=cost, disp_range=f"{lo}:{hi}")
-            compute_disparity(left, right, p)  # warm the kernels
-            t, res = timed(lambda: compute_disparity(left, right, p))  # noqa: B023
-            results[f"ours {method} {cost}"] = (
-                t, measure(res.disparity, gt, res.confidence, cv_row["density"]))
-        # whole commands on the same files
-        from PIL import Image
+METHODS = (("sgm", "census"), ("sgm", "ad_gradient"), ("bp", "census"), ("wta", "census"))
 
-        Image.fromarray(left).save(tmp / f"{name}_l.png")
-        Image.fromarray(right).save(tmp / f"{name}_r.png")
-        h, w = gt.shape
-        (tmp / f"{name}.json").write_text(json.dumps(
-            {"rectified": True, "image_size": [w, h], "focal_px": 1000.0, "cx": w / 2,
-             "cy": h / 2, "baseline": 0.2, "doffs": 0.0, "units": "m"}))
-        cmd_ours = [sys.executable, "-m", "stereomesh", "disparity", str(tmp / f"{name}_l.png"),
-                    str(tmp / f"{name}_r.png"), "--calib", str(tmp / f"{name}.json"),
-                    "--out", str(tmp / name), "--quiet", "--disp-range", f"{lo}:{hi}"]
-        cmd_cv = [sys.executable, "-c", OPENCV_SCRIPT, str(tmp / f"{name}_l.png"),
-                  str(tmp / f"{name}_r.png"), str(tmp / f"{name}_cv.pfm"), str(lo), str(hi),
-                  "sgbm"]
-        run_command(cmd_ours)  # warm the JIT cache
-        wall_ours, rss_ours = run_command(cmd_ours)
-        wall_cv, rss_cv = run_command(cmd_cv)
-        print(f"\n== {name}: {w}x{h}, {hi - lo} disparities ==")
-        print(f"{'method':<22}{'t/sgbm':>8}{'density':>9}{'bad2':>8}{'bad2@cv':>9}"
-              f"{'mae':>7}{'auc':>7}")
-        for method, (t, row) in results.items():
-            print(f"{method:<22}{t / t_cv:>8.2f}{row['density']:>9.3f}{row['bad2']:>8.3f}"
+
+def accuracy_table():
+    for name, left, right, gt, (lo, hi) in accuracy_pairs():
+        cv = {mode: measure(opencv_disparity(opencv_matcher(lo, hi, mode), left, right, lo), gt)
+              for mode in MODES}
+        rows = {f"opencv {mode}": row for mode, row in cv.items()}
+        for method, cost in METHODS:
+            p = DisparityParams(method=method, cost=cost, disp_range=f"{lo}:{hi}")
+            res = compute_disparity(left, right, p)
+            rows[f"ours {method} {cost}"] = measure(res.disparity, gt, res.confidence,
+                                                    cv["sgbm"]["density"])
+        print(f"\n== accuracy, {name}: {gt.shape[1]}x{gt.shape[0]}, {hi - lo} disparities ==")
+        print(f"{'method':<22}{'density':>9}{'bad2':>8}{'bad2@cv':>9}{'mae':>7}{'auc':>7}")
+        for method, row in rows.items():
+            print(f"{method:<22}{row['density']:>9.3f}{row['bad2']:>8.3f}"
                   f"{row.get('bad2_at_cv_density', np.nan):>9.3f}{row['mae']:>7.2f}"
                   f"{row.get('auc', np.nan):>7.3f}")
-        print(f"whole command: stereomesh disparity {wall_ours:.2f} s, {rss_ours:.0f} MB peak RSS;"
-              f" OpenCV MODE_SGBM script {wall_cv:.2f} s, {rss_cv:.0f} MB; "
-              f"time ratio {wall_ours / wall_cv:.2f}")
-        rows.append((name, results))
+        ours, cvs = rows["ours sgm census"], rows["opencv sgbm"]
+        print(f"goal checks: density {ours['density']:.3f} vs {cvs['density']:.3f}; "
+              f"bad2 ratio {ours['bad2'] / cvs['bad2']:.2f} (<= 0.7); at OpenCV's density "
+              f"{ours['bad2_at_cv_density'] / cvs['bad2']:.2f} (<= 0.5)")
+
+
+def render_speed_pair(width=1368):
+    from stereomesh.demo_scene import write_demo_scene
+
+    folder = Path(tempfile.mkdtemp(prefix="stereomesh-bench-"))
+    write_demo_scene(folder, width=width)
+    return folder
+
+
+def speed_table(folder, rounds=7, with_bp=True):
+    from PIL import Image
+
+    from stereomesh.matching.sgm import Workspace
+
+    left = np.asarray(Image.open(folder / "left.png").convert("RGB"))
+    right = np.asarray(Image.open(folder / "right.png").convert("RGB"))
+    lo, hi = 128, 384
+    h, w = left.shape[:2]
+    matchers = {mode: opencv_matcher(lo, hi, mode) for mode in ("sgbm", "3way")}
+    workspace = Workspace()
+    params = DisparityParams(disp_range=f"{lo}:{hi}")
+
+    def ours():
+        return compute_disparity(left, right, params, workspace=workspace)
+
+    ours()  # compile or load the kernels, size the work memory
+    for m in matchers.values():
+        opencv_disparity(m, left, right, lo)
+    ratios = {mode: [] for mode in matchers}
+    times = {"ours": [], **{mode: [] for mode in matchers}}
+    for _ in range(rounds):
+        for mode, m in matchers.items():
+            t = time.perf_counter()
+            opencv_disparity(m, left, right, lo)
+            t_cv = time.perf_counter() - t
+            t = time.perf_counter()
+            ours()
+            t_ours = time.perf_counter() - t
+            ratios[mode].append(t_ours / t_cv)
+            times[mode].append(t_cv)
+            times["ours"].append(t_ours)
+    print(f"\n== speed, demo scene {w}x{h}, {hi - lo} disparities, in-process ==")
+    print(f"ours (sgm, census, 8 paths, left-right, sub-pixel, confidence, speckles): "
+          f"{np.median(times['ours']):.3f} s median")
+    for mode in matchers:
+        print(f"OpenCV MODE_{mode.upper()}: {np.median(times[mode]):.3f} s median; "
+              f"ours / it: median {np.median(ratios[mode]):.2f}, best {min(ratios[mode]):.2f}")
+    if with_bp:
+        bp = DisparityParams(method="bp", disp_range=f"{lo}:{hi}")
+        compute_disparity(left, right, bp)
+        bp_ratio = []
+        for _ in range(3):
+            t = time.perf_counter()
+            compute_disparity(left, right, bp)
+            t_bp = time.perf_counter() - t
+            t = time.perf_counter()
+            ours()
+            bp_ratio.append(t_bp / (time.perf_counter() - t))
+        print(f"belief propagation / ours sgm: median {np.median(bp_ratio):.2f} "
+              f"(best {min(bp_ratio):.2f})")
+
+
+def command_table(folder, rounds=5):
+    lo, hi = "128", "384"
+    out = Path(tempfile.mkdtemp(prefix="stereomesh-cmd-"))
+    ours = [sys.executable, "-m", "stereomesh", "disparity", str(folder / "left.png"),
+            str(folder / "right.png"), "--calib", str(folder / "calib.json"), "--out",
+            str(out / "ours"), "--quiet", "--disp-range", f"{lo}:{hi}"]
+    cv = [sys.executable, "-c", OPENCV_SCRIPT, str(folder / "left.png"),
+          str(folder / "right.png"), str(out / "cv.pfm"), lo, hi, "sgbm"]
+    run_command(ours)  # make sure the JIT cache is warm
+    run_command(cv)
+    walls, rss, ratios = {"ours": [], "cv": []}, {"ours": [], "cv": []}, []
+    for _ in range(rounds):
+        w_cv, m_cv = run_command(cv)
+        w_ours, m_ours = run_command(ours)
+        walls["ours"].append(w_ours)
+        walls["cv"].append(w_cv)
+        rss["ours"].append(m_ours)
+        rss["cv"].append(m_cv)
+        ratios.append(w_ours / w_cv)
+    report = json.loads((out / "ours" / "report.json").read_text())
+    print("\n== whole commands on the 1.4 MP pair (alternated) ==")
+    print(f"stereomesh disparity: {np.median(walls['ours']):.2f} s median, peak RSS "
+          f"{max(rss['ours']):.0f} MB (report.json: {report['peak_memory_mb']:.0f} MB)")
+    print(f"OpenCV MODE_SGBM script: {np.median(walls['cv']):.2f} s median, peak RSS "
+          f"{max(rss['cv']):.0f} MB")
+    print(f"time ratio ours / OpenCV: median {np.median(ratios):.2f}, best {min(ratios):.2f}")
+
+
+def main(argv=None):
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--quick", action="store_true", help="accuracy and in-process SGM only")
+    args = ap.parse_args(argv)
+    print(f"cold JIT compile (fresh cache, tiny pair): {cold_jit_seconds():.1f} s")
+    accuracy_table()
+    folder = render_speed_pair()
+    speed_table(folder, with_bp=not args.quick)
+    if not args.quick:
+        command_table(folder)
 
 
 if __name__ == "__main__":

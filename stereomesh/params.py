@@ -80,8 +80,10 @@ class DisparityParams:
     bp_levels: int = param(4, "belief propagation coarse-to-fine levels", min=1, max=8)
     bp_tolerance: float = param(0.001, "stop when this share of labels changes in an iteration",
                                 min=0.0, max=1.0)
-    memory_budget_mb: int = param(768, "memory for the volumes of one strip of rows, MB; "
-                                  "larger images are solved in overlapping strips", min=16)
+    memory_budget_mb: int = param(640, "memory the disparity solver may allocate, MB; semi-"
+                                  "global matching recomputes more to stay within it, and "
+                                  "images still too large are solved in overlapping strips",
+                                  min=16)
     tile_overlap: int = param(32, "rows solved above and below each strip and dropped",
                               min=0, max=1024)
     subpixel: str = param("parabola", "sub-pixel interpolation of the cost minimum",

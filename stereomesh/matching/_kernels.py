@@ -26,6 +26,21 @@ def _popcount64(v):
 
 
 @njit(cache=True, parallel=True)
+def luma(image, scale):
+    """ITU-R BT.601 luma of an (H, W, 3) image times ``scale``, float32."""
+    H, W, _ = image.shape
+    out = np.empty((H, W), np.float32)
+    wr = np.float32(0.299 * scale)
+    wg = np.float32(0.587 * scale)
+    wb = np.float32(0.114 * scale)
+    for y in prange(H):
+        for x in range(W):
+            out[y, x] = (wr * np.float32(image[y, x, 0]) + wg * np.float32(image[y, x, 1])
+                         + wb * np.float32(image[y, x, 2]))
+    return out
+
+
+@njit(cache=True, parallel=True)
 def edge_padded(image, pad_rows, pad_cols):
     """``image`` with its border rows and columns replicated ``pad_rows``/``pad_cols`` times."""
     H, W = image.shape

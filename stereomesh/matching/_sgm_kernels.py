@@ -38,6 +38,7 @@ from numba import njit, prange
 from stereomesh.matching._kernels import _penalty2, _popcount64
 from stereomesh.matching._simd import (
     LANES,
+    cycle_counter,
     prefetch,
     vadd,
     vadds,
@@ -376,6 +377,36 @@ def _right_winners(r, final, d_min, n_disp, rmin, rarg, best_right):
         best_right[r, xr] = k if 0 <= k < n_disp else -1
 
 
+REBALANCE_STEPS = 8
+
+
+@njit(cache=True)
+def _rebalance(edges, spent, W):
+    """Move the lanes' column boundaries toward equal time per step.
+
+    ``spent`` is the time (cycles) each lane worked over the last steps. The
+    boundary after a group of lanes that took more than their share moves
+    left by half the excess, converted to columns at the mean cost of a column.
+    Only the speed depends on this: every split gives the same result.
+    """
+    lanes = spent.shape[0]
+    total = 0.0
+    for t in range(lanes):
+        total += spent[t]
+    if total <= 0:
+        return
+    mean = total / lanes
+    per_column = total / W
+    excess = 0.0
+    for t in range(1, lanes):
+        excess += spent[t - 1] - mean
+        edges[t] -= 0.5 * excess / per_column
+    for t in range(1, lanes):
+        edges[t] = min(max(edges[t], edges[t - 1]), W)
+    edges[0] = 0.0
+    edges[lanes] = W
+
+
 # Fields of one step of the schedule (one parallel region).
 _PHASE, _COLS, _FROM, _FRESH, _MODE, _FWD_ROW, _SAVE, _HORIZ, _HORIZ_OUT, _SELECT, _LOAD, \
     _PARITY = range(12)
@@ -394,24 +425,32 @@ def _schedule(H, block_rows):
     in the next block, or in two last steps).
     """
     n_blocks = (H + block_rows - 1) // block_rows
-    n = (n_blocks - 1) * block_rows + H + n_blocks + H + 2
+    # Blocks are counted from the bottom, so that a short block is the top one
+    # and the first pass stops block_rows above the bottom.
+    starts = np.empty(n_blocks + 1, np.int64)
+    for block in range(n_blocks + 1):
+        starts[block] = max(0, H - (n_blocks - block) * block_rows)
+    n = starts[n_blocks - 1] + H + n_blocks + H + 2
     steps = np.full((n, 12), -1, np.int64)
     i = 0
     parity = 0
-    for r in range((n_blocks - 1) * block_rows):
+    for r in range(starts[n_blocks - 1]):
         steps[i, _PHASE] = _PASS1
         steps[i, _COLS] = r
         steps[i, _FROM] = r - 1
         steps[i, _FRESH] = r == 0
         steps[i, _MODE] = 0
-        steps[i, _SAVE] = (r + 1) // block_rows - 1 if (r + 1) % block_rows == 0 else -1
+        # Checkpoint `block - 1` holds the paths at the last row above `block`.
+        for block in range(1, n_blocks):
+            if r == starts[block] - 1:
+                steps[i, _SAVE] = block - 1
         steps[i, _PARITY] = parity
         parity = 1 - parity
         i += 1
     up_parity = 0
     for block in range(n_blocks - 1, -1, -1):
-        a = block * block_rows
-        b = min(H, a + block_rows)
+        a = starts[block]
+        b = starts[block + 1]
         parity = 0
         for step in range(b - a + 1):
             r = a + step
@@ -514,18 +553,28 @@ def sgm_solve(cl, crev, vol, use_volume, gray, d_min, n_disp, dp, invalid, pad_c
     source = (cl, crev, vol, use_volume, d_min, n_disp, invalid, pad_cost)
     penalties = (p1, p2, g_scale)
     steps = _schedule(H, block_rows)
+    # Column split per phase, adapted to the measured time of each lane (see _rebalance).
+    edges = np.empty((3, lanes + 1), np.float64)
+    for j in range(lanes + 1):
+        edges[_PASS1, j] = bounds_even[j]
+        edges[_DOWN, j] = bounds_down[j]
+        edges[_UP, j] = bounds_up[j]
+    busy = np.zeros(lanes, np.int64)
+    spent = np.zeros((3, lanes), np.int64)
+    measured = np.zeros(3, np.int64)
+    bounds = np.empty(lanes + 1, np.int64)
     for i in range(steps.shape[0]):
         st = steps[i]
-        up = st[_PHASE] == _UP
+        phase = st[_PHASE]
+        up = phase == _UP
         work = work_up if up else work_down
         pmin = pmin_up if up else pmin_down
         crow = crow_up if up else crow_down
         part = part_up if up else part_down
-        bounds = bounds_up if up else bounds_down
-        if st[_PHASE] == _PASS1:
-            bounds = bounds_even
         out = final if up else fwd
         parity = st[_PARITY]
+        for j in range(lanes + 1):
+            bounds[j] = min(max(np.int64(edges[phase, j] + 0.5), 0), W)
         if st[_LOAD] >= 0:
             # Resume the paths from above at the checkpoint of this block.
             slot = st[_LOAD]
@@ -537,6 +586,7 @@ def sgm_solve(cl, crev, vol, use_volume, gray, d_min, n_disp, dp, invalid, pad_c
                             work[start + k] = ckpt[slot, j, x, k]
                         pmin[parity, j, x] = ckpt_min[slot, j, x]
         for t in prange(lanes):
+            start_cycles = cycle_counter()
             if st[_COLS] >= 0:
                 _columns(st[_COLS], st[_FROM], st[_FRESH] == 1, bounds[t], bounds[t + 1],
                          st[_MODE], source, penalties, gray, ndir, crow, work,
@@ -549,6 +599,14 @@ def sgm_solve(cl, crev, vol, use_volume, gray, d_min, n_disp, dp, invalid, pad_c
                 _select_row(st[_SELECT], final, d_min, n_disp, best_k, c_best, c_second,
                             c_minus, c_plus)
                 _right_winners(st[_SELECT], final, d_min, n_disp, rmin, rarg, best_right)
+            busy[t] = cycle_counter() - start_cycles
+        if st[_COLS] >= 0 and lanes > 1:
+            spent[phase] += busy
+            measured[phase] += 1
+            if measured[phase] == REBALANCE_STEPS:
+                _rebalance(edges[phase], spent[phase], W)
+                spent[phase] = 0
+                measured[phase] = 0
     return best_k, c_best, c_second, c_minus, c_plus, best_right
 
 

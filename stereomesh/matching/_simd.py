@@ -344,3 +344,64 @@ def prefetch(typingctx, array, index):
         return context.get_dummy_value()
 
     return sig, codegen
+
+
+@intrinsic
+def cycle_counter(typingctx):
+    """The CPU's time-stamp counter (for load balancing; ticks at a constant rate)."""
+    sig = types.int64()
+
+    def codegen(context, builder, signature, args):
+        return _call(builder, "llvm.readcyclecounter", ir.IntType(64))
+
+    return sig, codegen
+
+
+# Lane shifts by 2, 4, 8 and 16, for log-step scans across the lanes (a distance
+# transform within one vector takes one shift per doubling of its reach).
+vshift_in_low2 = _shuffle_pair(LANES - 2, "``vshift_in_low2(below, cur)``: lane k holds k - 2.")
+vshift_in_low4 = _shuffle_pair(LANES - 4, "``vshift_in_low4(below, cur)``: lane k holds k - 4.")
+vshift_in_low8 = _shuffle_pair(LANES - 8, "``vshift_in_low8(below, cur)``: lane k holds k - 8.")
+vshift_in_low16 = _shuffle_pair(LANES - 16,
+                                "``vshift_in_low16(below, cur)``: lane k holds entry k - 16.")
+vshift_in_high2 = _shuffle_pair(2, "``vshift_in_high2(cur, above)``: lane k holds entry k + 2.")
+vshift_in_high4 = _shuffle_pair(4, "``vshift_in_high4(cur, above)``: lane k holds entry k + 4.")
+vshift_in_high8 = _shuffle_pair(8, "``vshift_in_high8(cur, above)``: lane k holds entry k + 8.")
+vshift_in_high16 = _shuffle_pair(16, "``vshift_in_high16(cur, above)``: lane k holds entry k + 16.")
+
+vmul = _binary(lambda b, x, y: b.mul(x, y), "Lane-wise ``a * b`` modulo 2**16.")
+
+
+@intrinsic
+def vget(typingctx, vec, lane):
+    """Lane ``lane`` (an integer in ``[0, LANES)``) as a uint16 scalar."""
+    if vec != u16vec or not isinstance(lane, types.Integer):
+        return None
+    sig = types.uint16(u16vec, types.intp)
+
+    def codegen(context, builder, signature, args):
+        return builder.extract_element(args[0], builder.trunc(args[1], _I32))
+
+    return sig, codegen
+
+
+def _shift_by_scalar(emit, doc):
+    @intrinsic
+    def op(typingctx, vec, count):
+        if vec != u16vec or not isinstance(count, types.Integer):
+            return None
+        sig = u16vec(u16vec, types.intp)
+
+        def codegen(context, builder, signature, args):
+            return emit(builder, args[0], _splat(builder, builder.trunc(args[1], _I16)))
+
+        return sig, codegen
+
+    op.__doc__ = doc
+    return op
+
+
+vshl = _shift_by_scalar(lambda b, x, n: b.shl(x, n),
+                        "Every lane shifted left by ``count`` bits (``0 <= count < 16``).")
+vshr = _shift_by_scalar(lambda b, x, n: b.lshr(x, n),
+                        "Every lane shifted right by ``count`` bits, zero-filled (0 to 15).")

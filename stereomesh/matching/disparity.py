@@ -65,6 +65,10 @@ def to_gray(image: np.ndarray) -> np.ndarray:
     """
     image = np.asarray(image)
     scale = 255.0 / 65535.0 if image.dtype == np.uint16 else 1.0
+    if image.ndim == 3 and image.shape[2] == 3 and image.dtype in (np.uint8, np.uint16):
+        from stereomesh.matching import _kernels
+
+        return _kernels.luma(np.ascontiguousarray(image), scale)
     img = image.astype(np.float32) * np.float32(scale)
     if img.ndim == 3:
         img = img[..., 0] * 0.299 + img[..., 1] * 0.587 + img[..., 2] * 0.114

@@ -279,13 +279,23 @@ def memory_bytes(height: int, width: int, n_disp: int, *, paths: int = 8,
 
 def plan_block_rows(height: int, width: int, n_disp: int, budget_bytes: int, *,
                     paths: int = 8, cost: str = "census") -> int | None:
-    """Rows per block for a memory budget: all rows (fastest) if they fit, else the
-    least-memory block size, or None if even that does not fit."""
-    for k in (height, best_block_rows(height, paths)):
-        need = memory_bytes(height, width, n_disp, paths=paths, cost=cost, block_rows=k)
-        if need <= budget_bytes:
-            return k
-    return None
+    """Rows per block for a memory budget, or None if even the smallest need does not fit.
+
+    Larger blocks recompute fewer rows (the first pass covers all rows above
+    the last block: ``2 H - k`` forward rows in all, ``H`` when the block is
+    the whole image), so the largest block that fits is taken.
+    """
+    def need(k):
+        return memory_bytes(height, width, n_disp, paths=paths, cost=cost, block_rows=k)
+
+    lo = best_block_rows(height, paths)
+    if need(lo) > budget_bytes:
+        return None
+    hi = height
+    while lo < hi:  # need() grows with k above the least-memory size
+        mid = (lo + hi + 1) // 2
+        lo, hi = (mid, hi) if need(mid) <= budget_bytes else (lo, mid - 1)
+    return lo
 
 
 def _lane_columns(width: int, forward: bool | None, lanes: int | None = None) -> np.ndarray:
