@@ -172,3 +172,51 @@ def test_confidence_kernel_matches_opencv_reference():
     lr[::9, ::4] = np.inf
     np.testing.assert_allclose(confidence_map(c1, c2, lr, gray),
                                confidence_map_reference(c1, c2, lr, gray), atol=2e-6)
+
+
+def _classes_reference(best_left, best_right, d_min, n_disp, max_diff):
+    # The definition, pixel by pixel: a failed pixel is a mismatch when some
+    # hypothesis maps it to a right pixel whose winner points back to it.
+    h, w = best_left.shape
+    classes = np.zeros((h, w), np.uint8)
+    for y in range(h):
+        for x in range(w):
+            k = best_left[y, x]
+            if k < 0 or k == 0 or k == n_disp - 1:
+                classes[y, x] = 4
+                continue
+            kr = best_right[y, x - d_min - k]
+            if kr >= 0 and abs(k - kr) <= max_diff:
+                continue
+            back = any(0 <= x - d_min - k2 < w and best_right[y, x - d_min - k2] >= 0
+                       and abs(best_right[y, x - d_min - k2] - k2) <= max_diff
+                       for k2 in range(n_disp))
+            classes[y, x] = 2 if back else 1
+        # Failed pixels whose match, at the disparity of the nearest consistent
+        # pixel to their right, falls left of the right image: outside the overlap.
+        d_right = np.nan
+        for x in range(w - 1, -1, -1):
+            if classes[y, x] == 0:
+                d_right = d_min + best_left[y, x]
+            elif classes[y, x] in (1, 2) and x < d_right:
+                classes[y, x] = 4
+    return classes
+
+
+@pytest.mark.parametrize("max_diff", [0, 1, 3])
+def test_consistency_classes_match_their_definition(max_diff):
+    rng = np.random.default_rng(8)
+    h, w, d_min, n_disp = 5, 60, -2, 12
+    best_left = np.full((h, w), -1, np.int32)
+    for x in range(w):  # only hypotheses whose right pixel lies inside the image
+        lo, hi = max(0, x - w + 1 - d_min), min(n_disp, x - d_min + 1)
+        if hi > lo:
+            best_left[:, x] = rng.integers(lo, hi, h)
+    best_right = rng.integers(-1, n_disp, (h, w)).astype(np.int32)
+    zeros = np.zeros((h, w), np.float32)
+    classes, _, _ = _kernels.refine_winners(best_left, best_right, zeros, zeros, zeros, d_min,
+                                            n_disp, max_diff, 2, np.float32(-1e9))
+    # Every step counts as a step forward (min_step -1e9): the occluded/mismatch
+    # split of the check itself is compared, without the depth-step rule.
+    want = _classes_reference(best_left, best_right, d_min, n_disp, max_diff)
+    np.testing.assert_array_equal(classes, want)

@@ -345,6 +345,16 @@ def _consistency_row(y, best_left, best_right, d_min, n_disp, max_diff, classes,
     undefined).
     """
     W = best_left.shape[1]
+    # Left pixels that some right pixel's winner points back to (within max_diff).
+    pointed = np.zeros(W, np.bool_)
+    for xr in range(W):
+        kr = best_right[y, xr]
+        if kr < 0:
+            continue
+        for k2 in range(max(kr - max_diff, 0), min(kr + max_diff, n_disp - 1) + 1):
+            x = xr + d_min + k2
+            if 0 <= x < W:
+                pointed[x] = True
     for x in range(W):
         lr_diff[y, x] = np.inf
         classes[y, x] = 0
@@ -361,16 +371,7 @@ def _consistency_row(y, best_left, best_right, d_min, n_disp, max_diff, classes,
             continue
         if kr >= 0 and abs(k - kr) <= max_diff:
             continue
-        cls = 1
-        for k2 in range(n_disp):
-            xr2 = x - (d_min + k2)
-            if xr2 < 0 or xr2 >= W:
-                continue
-            kr2 = best_right[y, xr2]
-            if kr2 >= 0 and abs(kr2 - k2) <= max_diff:
-                cls = 2
-                break
-        classes[y, x] = cls
+        classes[y, x] = 2 if pointed[x] else 1
 
 
 @njit(cache=True, inline="always")
