@@ -91,15 +91,44 @@ def load_pair(inputs: Sequence[str | Path], calib: str | Path | None) -> PairInp
     return PairInput(left, right, rig, [*paths, Path(calib)])
 
 
+def load_pair_while_warming(inputs, calib, params: Params) -> tuple[PairInput, list[dict]]:
+    """:func:`load_pair` and the input hashes, while the disparity kernels load.
+
+    Loading compiled kernels takes the interpreter for a few tenths of a second
+    in a fresh process; image decoding and hashing do not need it, so they run
+    in a thread meanwhile. Errors of either surface here, as they would alone.
+    """
+    from concurrent.futures import ThreadPoolExecutor
+
+    from stereomesh.matching.disparity import warm_up
+
+    def read():
+        pair = load_pair(inputs, calib)
+        return pair, _input_records(pair.sources)
+
+    with ThreadPoolExecutor(1) as pool:
+        future = pool.submit(read)
+        try:
+            warm_up(params.disparity)
+        finally:
+            pair, records = future.result()
+    return pair, records
+
+
+def _input_records(sources: Sequence[Path]) -> list[dict]:
+    return [{"path": str(p), "sha256": _sha256(p)} for p in sources if p.is_file()]
+
+
 class Report:
     """Collects the provenance record as the stages run."""
 
-    def __init__(self, command: str, params: Params, sources: Sequence[Path]):
+    def __init__(self, command: str, params: Params, sources: Sequence[Path],
+                 inputs: list[dict] | None = None):
         self.data: dict = {
             "version": __version__,
             "command": command,
             "status": "running",
-            "inputs": [{"path": str(p), "sha256": _sha256(p)} for p in sources if p.is_file()],
+            "inputs": _input_records(sources) if inputs is None else inputs,
             "params": params.to_dict(),
             "scale": "unscaled",
             "stages": {},
@@ -179,8 +208,8 @@ def run_disparity(
     """The ``stereomesh disparity`` job: disparity outputs, the report, optional previews."""
     progress = progress or (lambda step, frac: None)
     out_dir = Path(out_dir)
-    pair = load_pair(inputs, calib)
-    report = Report(command, params, pair.sources)
+    pair, records = load_pair_while_warming(inputs, calib, params)
+    report = Report(command, params, pair.sources, records)
     report.data["scale"] = "metric" if pair.rig.metric else "unscaled"
     out_dir.mkdir(parents=True, exist_ok=True)
     try:

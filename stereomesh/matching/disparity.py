@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import dataclasses
 import time
 from collections.abc import Callable
 from dataclasses import dataclass, field
@@ -230,6 +231,19 @@ def compute_disparity(
     return DisparityResult(disparity, confidence, classes, labels, d_min, n_disp, figures)
 
 
+def warm_up(params: DisparityParams | None = None) -> None:
+    """Load (or compile) the kernels :func:`compute_disparity` will run with ``params``.
+
+    A fresh process spends a few tenths of a second loading compiled kernels on
+    first use; calling this first lets a caller overlap that with reading files.
+    """
+    params = params or DisparityParams()
+    small = dataclasses.replace(params, disp_range="0:8", speckle_size=0,
+                                memory_budget_mb=max(params.memory_budget_mb, 16))
+    image = np.random.default_rng(0).integers(0, 255, (12, 40, 3), dtype=np.uint8)
+    compute_disparity(image, image, small)
+
+
 def _zero_energy() -> dict:
     return {"unary": 0.0, "pairwise": 0.0, "total": 0.0}
 
@@ -307,17 +321,19 @@ def _solve(gl, gr, d_min, n_disp, params, workspace=None):
             p2_gradient_scale=params.p2_gradient_scale, paths=params.paths,
             block_rows=block_rows, workspace=workspace,
         ), {"block_rows": block_rows}
+    if params.method == "bp":
+        # Costs come from the census strings level by level: no volume is built here.
+        from stereomesh.matching.bp import belief_propagation_matching
+
+        return belief_propagation_matching(
+            gl, gr, d_min, n_disp, pairwise=pairwise_term(params), cost=params.cost,
+            window=(params.census_width, params.census_height),
+            iterations=params.bp_iterations, levels=params.bp_levels,
+            tolerance=params.bp_tolerance, return_info=True,
+        )
     from stereomesh.matching.winners import select_winners
 
     cost = _cost_volume(gl, gr, d_min, n_disp, params)
-    if params.method == "bp":
-        from stereomesh.matching.bp import belief_propagation
-
-        beliefs, info = belief_propagation(
-            cost, pairwise_term(params), iterations=params.bp_iterations,
-            levels=params.bp_levels, tolerance=params.bp_tolerance, return_info=True,
-        )
-        return select_winners(beliefs, d_min, cost), info
     if params.method == "wta":
         return select_winners(cost, d_min, cost), None
     raise ValueError(f"unknown method {params.method!r}")
