@@ -512,6 +512,42 @@ def confidence_kernel(c_best, c_second, lr_diff, gray, peak_ratio_scale, lr_sigm
     return conf
 
 
+@njit(cache=True, parallel=True)
+def fixed_point_disparity(disparity, invalid):
+    """Disparity as int16 sixteenths of a pixel above its minimum (plus one pixel).
+
+    ``invalid`` where the disparity is not finite; the offset keeps every valid
+    value positive and within int16 for spans up to 2047 pixels.
+    """
+    H, W = disparity.shape
+    row_min = np.full(H, np.inf)
+    for y in prange(H):
+        m = np.inf
+        for x in range(W):
+            d = disparity[y, x]
+            if np.isfinite(d) and d < m:
+                m = d
+        row_min[y] = m
+    lo = row_min.min()
+    out = np.empty((H, W), np.int16)
+    for y in prange(H):
+        for x in range(W):
+            d = disparity[y, x]
+            out[y, x] = np.int16(np.round((d - lo + 1.0) * 16.0)) if np.isfinite(d) else invalid
+    return out
+
+
+@njit(cache=True, parallel=True)
+def newly_marked(before, after, invalid):
+    """Pixels that hold ``invalid`` in ``after`` but did not in ``before``."""
+    H, W = before.shape
+    out = np.empty((H, W), np.bool_)
+    for y in prange(H):
+        for x in range(W):
+            out[y, x] = after[y, x] == invalid and before[y, x] != invalid
+    return out
+
+
 @njit(cache=True, inline="always")
 def _reflect101(i, n):
     if n == 1:

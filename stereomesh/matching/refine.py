@@ -76,13 +76,13 @@ def speckle_mask(disparity: np.ndarray, max_size: int, max_diff: float) -> np.nd
     """
     import cv2
 
-    disparity = np.asarray(disparity, np.float32)
+    from stereomesh.matching import _kernels
+
+    disparity = np.ascontiguousarray(disparity, np.float32)
     if max_size <= 0:
         return np.zeros(disparity.shape, bool)
-    valid = np.isfinite(disparity)
     # OpenCV's speckle filter works on fixed-point int16 disparities (1/16 px).
-    lo = float(np.nanmin(disparity)) if valid.any() else 0.0
-    fixed = np.where(valid, np.round((disparity - lo + 1.0) * 16.0), -16).astype(np.int16)
+    fixed = _kernels.fixed_point_disparity(disparity, np.int16(-16))
     marked = fixed.copy()
     cv2.filterSpeckles(marked, -16, int(max_size), int(round(max_diff * 16)))
-    return valid & (marked == -16)
+    return _kernels.newly_marked(fixed, marked, np.int16(-16))

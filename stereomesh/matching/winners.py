@@ -63,9 +63,9 @@ def select_winners(volume: np.ndarray, d_min: int, cost: np.ndarray) -> Winners:
     Examples
     --------
     >>> import numpy as np
-    >>> vol = np.array([[[5, 1, 4, 3]]], np.float32)
-    >>> w = select_winners(vol, 0, vol)
-    >>> int(w.best_k[0, 0]), float(w.c_second[0, 0])
+    >>> vol = np.tile(np.array([5, 1, 4, 3], np.float32), (1, 4, 1))  # (1, 4, 4)
+    >>> w = select_winners(vol, 0, vol)  # pixel 3 can match all four hypotheses
+    >>> int(w.best_k[0, 3]), float(w.c_second[0, 3])
     (1, 3.0)
     """
     from stereomesh.matching import _kernels
