@@ -72,13 +72,15 @@ class DisparityParams:
     bp_potential: str = param("truncated_linear", "pairwise term of belief propagation",
                               choices=("truncated_linear", "potts"))
     bp_weight: float = param(6.0, "belief propagation: cost per unit of disparity step "
-                             "(or per label change for Potts)", min=0.0)
-    bp_truncation: float = param(4.0, "belief propagation: truncation of the linear term, "
-                                 "disparity steps", min=1.0)
-    bp_iterations: int = param(5, "belief propagation iterations per pyramid level", min=1,
-                               max=200)
+                             "(or per label change for Potts), matching-cost units", min=0.0)
+    bp_truncation: float = param(2.0, "belief propagation: truncation of the linear term, "
+                                 "disparity steps (2: a step of one costs the weight, any "
+                                 "larger jump twice it)", min=1.0)
+    bp_iterations: int = param(5, "belief propagation iterations per pyramid level (the "
+                               "finest level always runs them all)", min=1, max=200)
     bp_levels: int = param(4, "belief propagation coarse-to-fine levels", min=1, max=8)
-    bp_tolerance: float = param(0.001, "stop when this share of labels changes in an iteration",
+    bp_tolerance: float = param(0.001, "belief propagation: a coarse level stops when fewer "
+                                "than this share of labels change in an iteration",
                                 min=0.0, max=1.0)
     memory_budget_mb: int = param(640, "memory the disparity solver may allocate, MB; semi-"
                                   "global matching recomputes more to stay within it, and "

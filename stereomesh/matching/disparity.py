@@ -277,9 +277,12 @@ def row_strips(height: int, width: int, n_disp: int, params: DisparityParams) ->
                                    cost=params.cost) is not None
     else:
         # Bytes per (pixel, hypothesis): the cost volume of winner-takes-all;
-        # belief propagation's cost, float data, four float messages, beliefs,
-        # and their coarse levels.
-        per_cell = {"wta": 1, "bp": 4 + 24 + 8}[params.method]
+        # belief propagation keeps every hypothesis only at its coarsest level.
+        from stereomesh.matching.bp import bytes_per_cell
+
+        per_cell = {"wta": 1, "bp": bytes_per_cell(
+            height, width, n_disp, levels=params.bp_levels, iterations=params.bp_iterations,
+            cost=params.cost)}[params.method]
 
         def fits(rows):
             return rows * width * n_disp * per_cell <= budget
