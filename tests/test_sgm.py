@@ -52,6 +52,8 @@ CASES = [
     (40, 33, 0, 20, 8, "census", 40, 60),
     (40, 33, 0, 20, 8, "census", 39, 60),
     (30, 50, -2, 33, 8, "census", 6, 400),  # path values beyond uint8: 16-bit buffers
+    (9, 40, 35, 20, 8, "census", None, 60),  # most hypotheses beyond the right image
+    (9, 40, -70, 20, 8, "census", None, 60),  # none inside it
 ]
 
 
@@ -80,8 +82,9 @@ def test_lane_split_and_workspace_do_not_change_the_result():
     # lanes and a reused workspace must give the same bits.
     left, right = _pair(26, 70, seed=3)
     d_min, n_disp, dp = -2, 30, 32
-    cl = _kernels.census_planes(census_transform(left), 3, 0, False)
-    crev = _kernels.census_planes(census_transform(right), 3, dp, True)
+    cl = _kernels.census_planes(census_transform(left), 3, 0, 0, False)
+    crev = _kernels.census_planes(census_transform(right), 3,
+                                  *_sgm_kernels._right_pad(d_min, dp), True)
     ws = Workspace()
     results = []
     for lanes, block_rows in ((1, 26), (2, 5), (3, 7), (5, 26)):

@@ -53,19 +53,19 @@ def edge_padded(image, pad_rows, pad_cols):
 
 
 @njit(cache=True, parallel=True)
-def census_planes(strings, planes, pad, reverse):
-    """Census strings split into 16-bit planes, ``(planes, H, W + 2 * pad)`` uint16.
+def census_planes(strings, planes, pad_left, pad_right, reverse):
+    """Census strings split into 16-bit planes, ``(planes, H, pad_left + W + pad_right)``.
 
-    Plane ``p`` holds bits ``16 p .. 16 p + 15``; with ``reverse`` each row is in
-    reverse column order; ``pad`` zero columns on both sides.
+    Plane ``p`` holds bits ``16 p .. 16 p + 15`` (uint16); with ``reverse`` each
+    row is in reverse column order; zero columns pad both sides.
     """
     H, W = strings.shape
-    out = np.zeros((planes, H, W + 2 * pad), np.uint16)
+    out = np.zeros((planes, H, pad_left + W + pad_right), np.uint16)
     for y in prange(H):
         for x in range(W):
             s = strings[y, W - 1 - x if reverse else x]
             for p in range(planes):
-                out[p, y, pad + x] = np.uint16((s >> np.uint64(16 * p)) & np.uint64(0xFFFF))
+                out[p, y, pad_left + x] = np.uint16((s >> np.uint64(16 * p)) & np.uint64(0xFFFF))
     return out
 
 

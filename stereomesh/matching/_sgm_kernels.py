@@ -64,13 +64,24 @@ INF16 = 0xFFFF
 PREFETCH_AHEAD = 8
 
 
+@njit(cache=True)
+def _right_pad(d_min, dp):
+    """Zero columns before and after the reversed right census rows.
+
+    Left pixel ``x`` reads columns ``left + W - 1 - x + d_min + k`` for
+    ``0 <= k < dp``: from ``left + d_min`` (at ``x = W - 1``) to
+    ``left + W + d_min + dp - 2`` (at ``x = 0``), all inside the padded row.
+    """
+    return max(0, -d_min), max(0, d_min + dp)
+
+
 @njit(cache=True, inline="always")
 def _cost_row(crow, r, x0, x1, cl, crev, vol, use_volume, d_min, n_disp, dp, invalid, pad_cost):
     """Costs of left pixels ``(r, x0 .. x1 - 1)`` for all ``dp`` hypotheses, into ``crow[r & 1]``.
 
     Census strings come as 16-bit planes (``cl``: ``(P, H, W)``; ``crev``: the
-    right strings in reverse column order with ``dp`` zero columns on both
-    sides, ``(P, H, W + 2 dp)``), so that the strings of hypotheses
+    right strings in reverse column order with the zero columns of
+    :func:`_right_pad` on both sides), so that the strings of hypotheses
     ``k .. k + LANES`` are one contiguous load per plane and their Hamming
     distances one vector popcount each.
     """
@@ -90,7 +101,7 @@ def _cost_row(crow, r, x0, x1, cl, crev, vol, use_volume, d_min, n_disp, dp, inv
             k_lo = max(0, x - d_min - W + 1)
             k_hi = min(n_disp, x - d_min + 1)
             planes, H, wide = crev.shape
-            rb = dp + W - 1 - x + d_min
+            rb = _right_pad(d_min, dp)[0] + W - 1 - x + d_min
             for o in range(0, dp, LANES):
                 v = vhamming(crev, r * wide + rb + o, cl[0, r, x])
                 for p in range(1, planes):

@@ -174,8 +174,9 @@ def semi_global_matching(
         cr = census_transform(right, window)
         invalid = window[0] * window[1] - 1
         planes = -(-invalid // 16)
-        left_planes = _kernels.census_planes(cl, planes, 0, False)
-        right_planes = _kernels.census_planes(cr, planes, dp, True)
+        left_planes = _kernels.census_planes(cl, planes, 0, 0, False)
+        right_planes = _kernels.census_planes(cr, planes, *_sgm_kernels._right_pad(d_min, dp),
+                                              True)
         volume = np.zeros((1, 1, 1), np.uint8)
         max_cost = invalid
     else:
