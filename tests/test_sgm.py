@@ -82,9 +82,13 @@ def test_lane_split_and_workspace_do_not_change_the_result():
     # lanes and a reused workspace must give the same bits.
     left, right = _pair(26, 70, seed=3)
     d_min, n_disp, dp = -2, 30, 32
-    cl = _kernels.census_planes(census_transform(left), 3, 0, 0, False)
-    crev = _kernels.census_planes(census_transform(right), 3,
-                                  *_sgm_kernels._right_pad(d_min, dp), True)
+    pads = _sgm_kernels._right_pad(d_min, dp)
+    cl = _kernels.census_planes_of_image(_kernels.edge_padded(left, 2, 3), 7, 5, 3, 0, 0, False)
+    crev = _kernels.census_planes_of_image(_kernels.edge_padded(right, 2, 3), 7, 5, 3, *pads,
+                                           True)
+    # The planes straight from the image equal the census strings split afterwards.
+    np.testing.assert_array_equal(
+        crev, _kernels.census_planes(census_transform(right), 3, *pads, True))
     ws = Workspace()
     results = []
     for lanes, block_rows in ((1, 26), (2, 5), (3, 7), (5, 26)):

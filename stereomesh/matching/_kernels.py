@@ -69,6 +69,24 @@ def census_planes(strings, planes, pad_left, pad_right, reverse):
     return out
 
 
+@njit(cache=True, inline="always")
+def _census_row(padded, y, win_w, win_h, row):
+    """Census strings of row ``y`` into ``row`` (zeroed), one neighbour offset at a time."""
+    rw = win_w // 2
+    rh = win_h // 2
+    W = row.shape[0]
+    one = np.uint64(1)
+    zero = np.uint64(0)
+    centre = padded[y + rh, rw : rw + W]
+    for dy in range(-rh, rh + 1):
+        for dx in range(-rw, rw + 1):
+            if dy == 0 and dx == 0:
+                continue
+            src = padded[y + rh + dy, rw + dx : rw + dx + W]
+            for x in range(W):
+                row[x] = (row[x] << one) | (one if src[x] < centre[x] else zero)
+
+
 @njit(cache=True, parallel=True)
 def census_transform(padded, win_w, win_h):
     """Census bit string per pixel: bit set where the neighbour is darker than the centre.
@@ -77,24 +95,27 @@ def census_transform(padded, win_w, win_h):
     columns of replicated border on each side. One neighbour offset at a time
     over a whole row, so that the comparisons vectorise across pixels.
     """
-    Hp, Wp = padded.shape
-    rw = win_w // 2
-    rh = win_h // 2
-    H = Hp - 2 * rh
-    W = Wp - 2 * rw
+    H = padded.shape[0] - 2 * (win_h // 2)
+    W = padded.shape[1] - 2 * (win_w // 2)
     out = np.zeros((H, W), np.uint64)
-    one = np.uint64(1)
-    zero = np.uint64(0)
     for y in prange(H):
-        row = out[y]
-        centre = padded[y + rh, rw : rw + W]
-        for dy in range(-rh, rh + 1):
-            for dx in range(-rw, rw + 1):
-                if dy == 0 and dx == 0:
-                    continue
-                src = padded[y + rh + dy, rw + dx : rw + dx + W]
-                for x in range(W):
-                    row[x] = (row[x] << one) | (one if src[x] < centre[x] else zero)
+        _census_row(padded, y, win_w, win_h, out[y])
+    return out
+
+
+@njit(cache=True, parallel=True)
+def census_planes_of_image(padded, win_w, win_h, planes, pad_left, pad_right, reverse):
+    """:func:`census_transform` written straight into 16-bit planes (see :func:`census_planes`)."""
+    H = padded.shape[0] - 2 * (win_h // 2)
+    W = padded.shape[1] - 2 * (win_w // 2)
+    out = np.zeros((planes, H, pad_left + W + pad_right), np.uint16)
+    for y in prange(H):
+        row = np.zeros(W, np.uint64)
+        _census_row(padded, y, win_w, win_h, row)
+        for x in range(W):
+            s = row[W - 1 - x if reverse else x]
+            for p in range(planes):
+                out[p, y, pad_left + x] = np.uint16((s >> np.uint64(16 * p)) & np.uint64(0xFFFF))
     return out
 
 

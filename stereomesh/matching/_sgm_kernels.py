@@ -622,15 +622,24 @@ def sgm_solve(cl, crev, vol, use_volume, gray, d_min, n_disp, dp, invalid, pad_c
 
 
 @njit(cache=True, parallel=True)
-def census_unary(cl, cr, labels, d_min, invalid):
-    """Census cost of each pixel at its label (the unary term of the energy)."""
-    H, W = labels.shape
+def census_unary(cl, crev, labels, d_min, invalid):
+    """Census cost of each pixel at its label (the unary term of the energy).
+
+    ``cl`` and ``crev`` are the census planes :func:`sgm_solve` takes.
+    """
+    planes, H, wide = crev.shape
+    W = labels.shape[1]
+    left_pad = max(0, -d_min)
     out = np.empty((H, W), np.float32)
     for y in prange(H):
         for x in range(W):
             xr = x - (d_min + labels[y, x])
             if 0 <= xr < W:
-                out[y, x] = _popcount64(cl[y, x] ^ cr[y, xr])
+                j = left_pad + W - 1 - xr
+                c = 0
+                for p in range(planes):
+                    c += _popcount64(np.uint64(cl[p, y, x] ^ crev[p, y, j]))
+                out[y, x] = c
             else:
                 out[y, x] = invalid
     return out

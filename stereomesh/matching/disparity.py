@@ -227,7 +227,7 @@ def compute_disparity(
         energy_bp_term=energies["bp"],
         step_seconds=timings,
     )
-    labels = np.where(best_k >= 0, best_k, 0).astype(np.int32)
+    labels = np.maximum(best_k, 0).astype(np.int32, copy=False)
     return DisparityResult(disparity, confidence, classes, labels, d_min, n_disp, figures)
 
 

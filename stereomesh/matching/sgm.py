@@ -152,7 +152,7 @@ def semi_global_matching(
     """
     from stereomesh.matching import _kernels, _sgm_kernels
     from stereomesh.matching._simd import LANES
-    from stereomesh.matching.costs import COST_FUNCTIONS, census_transform
+    from stereomesh.matching.costs import COST_FUNCTIONS, MAX_CENSUS_BITS
 
     left = np.ascontiguousarray(left, np.float32)
     right = np.ascontiguousarray(right, np.float32)
@@ -170,13 +170,17 @@ def semi_global_matching(
         block_rows = best_block_rows(h, paths)
     block_rows = int(min(max(1, block_rows), h))
     if cost == "census":
-        cl = census_transform(left, window)
-        cr = census_transform(right, window)
-        invalid = window[0] * window[1] - 1
+        ww, wh = (int(v) for v in window)
+        invalid = ww * wh - 1
+        if ww % 2 == 0 or wh % 2 == 0 or invalid > MAX_CENSUS_BITS:
+            raise ValueError(f"census window must have odd sides and at most "
+                             f"{MAX_CENSUS_BITS} comparisons, got {window}")
         planes = -(-invalid // 16)
-        left_planes = _kernels.census_planes(cl, planes, 0, 0, False)
-        right_planes = _kernels.census_planes(cr, planes, *_sgm_kernels._right_pad(d_min, dp),
-                                              True)
+        pads = _sgm_kernels._right_pad(d_min, dp)
+        left_planes = _kernels.census_planes_of_image(
+            _kernels.edge_padded(left, wh // 2, ww // 2), ww, wh, planes, 0, 0, False)
+        right_planes = _kernels.census_planes_of_image(
+            _kernels.edge_padded(right, wh // 2, ww // 2), ww, wh, planes, *pads, True)
         volume = np.zeros((1, 1, 1), np.uint8)
         max_cost = invalid
     else:
@@ -200,7 +204,8 @@ def semi_global_matching(
     )
     labels = np.maximum(best_k, 0)
     if cost == "census":
-        unary = _sgm_kernels.census_unary(cl, cr, labels, int(d_min), float(invalid))
+        unary = _sgm_kernels.census_unary(left_planes, right_planes, labels, int(d_min),
+                                          float(invalid))
     else:
         unary = np.take_along_axis(volume, labels[..., None], axis=2)[..., 0].astype(np.float32)
     return Winners(best_k, c1, c2, cm, cp, best_right, unary)
