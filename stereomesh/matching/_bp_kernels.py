@@ -25,6 +25,7 @@ from __future__ import annotations
 import numpy as np
 from numba import njit, prange
 
+from stereomesh.matching._kernels import _popcount64
 from stereomesh.matching._simd import (
     LANES,
     vadd,
@@ -181,24 +182,6 @@ def messages(h, delta, kind, steps, w, cap):
 
 
 @njit(cache=True, parallel=True)
-def reversed_planes(strings, n_planes, pad):
-    """Census strings as 16-bit planes, rows in reverse column order: (n_planes, H, W + 2·pad).
-
-    Plane ``p`` holds bits ``16p .. 16p + 15``; ``pad`` zero columns on both
-    sides. Then the strings of the right pixels ``x - d`` for consecutive ``d``
-    are consecutive in memory: one vector load and popcount per plane and window.
-    """
-    h, w = strings.shape
-    out = np.zeros((n_planes, h, w + 2 * pad), np.uint16)
-    for y in prange(h):
-        for x in range(w):
-            s = strings[y, w - 1 - x]
-            for p in range(n_planes):
-                out[p, y, pad + x] = np.uint16((s >> np.uint64(16 * p)) & np.uint64(0xFFFF))
-    return out
-
-
-@njit(cache=True, parallel=True)
 def census_at_labels(cl, cr, labels, d_min, invalid):
     """Census cost of each pixel at its label (``invalid`` where the match leaves the image)."""
     h, w = labels.shape
@@ -207,12 +190,7 @@ def census_at_labels(cl, cr, labels, d_min, invalid):
         for x in range(w):
             xr = x - (d_min + labels[y, x])
             if 0 <= xr < w:
-                v = cl[y, x] ^ cr[y, xr]
-                n = 0
-                while v:
-                    v &= v - np.uint64(1)
-                    n += 1
-                out[y, x] = n
+                out[y, x] = _popcount64(cl[y, x] ^ cr[y, xr])
             else:
                 out[y, x] = invalid
     return out
@@ -243,11 +221,11 @@ def _row_costs(src, l, e, y, x0, x1, offs, full, out, row_base, tmp):
     label (with ``full``, window ``j`` starts at ``j·LANES``, as many as ``out``
     holds per pixel); the vectors go to ``out.flat[row_base + (x·n + j)·LANES]``.
     Census costs come from the strings (``src`` is ``(cl, crev, vol,
-    use_volume, d_min, n_disp, invalid)``, ``crev`` the right strings from
-    :func:`reversed_planes`); hypotheses whose right pixel falls outside the
-    image cost ``invalid``. With ``use_volume`` they come from the uint16 volume.
-    One call per row: array arguments inside a per-pixel loop would cost a
-    reference-count update per call.
+    use_volume, d_min, n_disp, invalid)``, ``crev`` the right strings as
+    reversed 16-bit planes from ``_kernels.census_planes``); hypotheses whose
+    right pixel falls outside the image cost ``invalid``. With ``use_volume``
+    they come from the uint16 volume. One call per row: array arguments inside
+    a per-pixel loop would cost a reference-count update per call.
     """
     cl, crev, vol, use_volume, d_min, n_disp, invalid = src
     H0, W0 = cl.shape

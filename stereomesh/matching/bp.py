@@ -175,13 +175,14 @@ def plan(height: int, width: int, n_disp: int, pairwise, *, levels: int = 4,
 
 
 def _census_source(left, right, d_min, n_disp, window):
-    from stereomesh.matching import _bp_kernels
+    from stereomesh.matching import _bp_kernels, _kernels
     from stereomesh.matching.costs import census_transform
 
     cl = census_transform(left, window)
     cr = census_transform(right, window)
     invalid = window[0] * window[1] - 1
-    crev = _bp_kernels.reversed_planes(cr, max(1, -(-invalid // 16)), _bp_kernels.CENSUS_PAD)
+    pad = _bp_kernels.CENSUS_PAD
+    crev = _kernels.census_planes(cr, max(1, -(-invalid // 16)), pad, pad, True)
     dummy = np.zeros((1, 1, 1), np.uint16)
     return (cl, crev, dummy, False, int(d_min), int(n_disp), int(invalid)), cr, invalid
 
@@ -192,11 +193,12 @@ def _mirrored_census_source(cl, cr, d_min, n_disp, invalid):
     Mirroring permutes the bits of every census string the same way in both
     images, which leaves Hamming distances unchanged: the strings are reused.
     """
-    from stereomesh.matching import _bp_kernels
+    from stereomesh.matching import _bp_kernels, _kernels
 
     cl_m = np.ascontiguousarray(cr[:, ::-1])
-    crev = _bp_kernels.reversed_planes(np.ascontiguousarray(cl[:, ::-1]),
-                                       max(1, -(-invalid // 16)), _bp_kernels.CENSUS_PAD)
+    pad = _bp_kernels.CENSUS_PAD
+    crev = _kernels.census_planes(np.ascontiguousarray(cl[:, ::-1]), max(1, -(-invalid // 16)),
+                                  pad, pad, True)
     dummy = np.zeros((1, 1, 1), np.uint16)
     return (cl_m, crev, dummy, False, int(d_min), int(n_disp), int(invalid))
 
@@ -207,16 +209,6 @@ def _volume_source(volume, d_min):
     cl = np.zeros((h, w), np.uint64)
     crev = np.zeros((1, 1, 1), np.uint16)
     return (cl, crev, np.ascontiguousarray(volume, np.uint16), True, int(d_min), int(n), 0)
-
-
-def _lane_bounds(width: int, lanes: int | None = None) -> np.ndarray:
-    """Column slices of the worker lanes of the streamed level: T + 1 bounds."""
-    if lanes is None:
-        import numba
-
-        lanes = numba.get_num_threads()
-    lanes = max(1, min(lanes, width))
-    return np.rint(np.linspace(0, width, lanes + 1)).astype(np.int64)
 
 
 def level_pairwise(plan_: Plan, level: int) -> tuple:
@@ -271,7 +263,9 @@ def _pyramid(src, plan_, iterations, tolerance, stream, offset):
         hl, wl = plan_.shapes[level]
         pw = level_pairwise(plan_, level)
         if level == 0 and stream:
-            bounds = _lane_bounds(wl)
+            from stereomesh.matching.sgm import _lane_columns
+
+            bounds = _lane_columns(wl, None)  # even shares: no horizontal sweep here
             out = K.stream_finest(src, e, dp, parent, pw, int(iterations), bounds, offset)
             counts = out[5]
             changed = float(counts.sum() / (hl * wl)) if iterations > 1 else 1.0

@@ -277,8 +277,9 @@ def memory_bytes(height: int, width: int, n_disp: int, *, paths: int = 8,
     work = sum(int(np.prod(shape)) * np.dtype(dtype).itemsize
                for shape, dtype in buffer_shapes(height, width, dp, paths == 8, k, True))
     pixels = height * width
-    # Census strings (uint64) and their 16-bit planes (up to 4).
-    census = pixels * 8 * 2 + 4 * 2 * (pixels + height * (width + 2 * dp))
+    # The edge-padded float32 images the census is taken of, and its 16-bit
+    # planes (up to 4 per image).
+    census = pixels * 4 * 2 + 4 * 2 * (pixels + height * (width + 2 * dp))
     volume = 0 if cost == "census" else pixels * n_disp
     return work + census + volume + pixels * 4 * 7
 
