@@ -25,7 +25,7 @@ from __future__ import annotations
 import numpy as np
 from numba import njit, prange
 
-from stereomesh.matching._kernels import _popcount64
+from stereomesh.matching._kernels import _popcount64, _valid_range
 from stereomesh.matching._simd import (
     LANES,
     vadd,
@@ -204,12 +204,6 @@ def _scaled(acc, net, n_real):
     else:
         v = vshr(vadd(acc, vsplat(np.uint16(1 << (-net - 1)))), -net)
     return vfill_outside(v, 0, n_real, PAD)
-
-
-@njit(cache=True, inline="always")
-def _valid_range(fx, width, d_min, n_disp):
-    """Hypotheses of left column ``fx`` whose right pixel lies inside the image."""
-    return max(0, fx - d_min - width + 1), min(n_disp, fx - d_min + 1)
 
 
 @njit(cache=True)

@@ -25,6 +25,12 @@ def _popcount64(v):
     return (v * np.uint64(0x0101010101010101)) >> np.uint64(56)
 
 
+@njit(cache=True, inline="always")
+def _valid_range(fx, width, d_min, n_disp):
+    """Hypotheses of left column ``fx`` whose right pixel lies inside the image."""
+    return max(0, fx - d_min - width + 1), min(n_disp, fx - d_min + 1)
+
+
 @njit(cache=True, parallel=True)
 def luma(image, scale):
     """ITU-R BT.601 luma of an (H, W, 3) image times ``scale``, float32."""

@@ -35,7 +35,7 @@ from __future__ import annotations
 import numpy as np
 from numba import njit, prange
 
-from stereomesh.matching._kernels import _penalty2, _popcount64
+from stereomesh.matching._kernels import _penalty2, _popcount64, _valid_range
 from stereomesh.matching._simd import (
     LANES,
     cycle_counter,
@@ -98,8 +98,7 @@ def _cost_row(crow, r, x0, x1, cl, crev, vol, use_volume, d_min, n_disp, dp, inv
                 crow[cb + k] = pad_cost
         else:
             # Hypotheses whose right pixel x - d_min - k lies inside the image.
-            k_lo = max(0, x - d_min - W + 1)
-            k_hi = min(n_disp, x - d_min + 1)
+            k_lo, k_hi = _valid_range(x, W, d_min, n_disp)
             planes, H, wide = crev.shape
             rb = _right_pad(d_min, dp)[0] + W - 1 - x + d_min
             for o in range(0, dp, LANES):
@@ -270,8 +269,7 @@ def _select_row(r, final, d_min, n_disp, best_k, c_best, c_second, c_minus, c_pl
     for x in range(W):
         fb = ((r & 1) * W + x) * dp
         # Hypotheses whose right pixel lies inside the image.
-        k_lo = max(0, x - W + 1 - d_min)
-        k_hi = min(n_disp, x - d_min + 1)
+        k_lo, k_hi = _valid_range(x, W, d_min, n_disp)
         # Padded hypotheses never win, but they must not pose as a second best.
         masked = k_lo > 0 or k_hi < dp
         m1 = inf
