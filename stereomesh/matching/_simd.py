@@ -194,24 +194,29 @@ def vfill_outside(typingctx, vec, lo, hi, value):
 
     def codegen(context, builder, signature, args):
         v, lo_, hi_, fill = args
-        i64 = ir.IntType(64)
-
-        def clamp(x):
-            x = builder.select(builder.icmp_signed("<", x, ir.Constant(i64, 0)),
-                               ir.Constant(i64, 0), x)
-            return builder.select(builder.icmp_signed(">", x, ir.Constant(i64, LANES)),
-                                  ir.Constant(i64, LANES), x)
-
-        lo_v = _splat(builder, builder.trunc(clamp(lo_), _I16))
-        hi_v = _splat(builder, builder.trunc(clamp(hi_), _I16))
-        inside = builder.and_(
-            builder.icmp_unsigned(">=", _LANE_INDEX, lo_v),
-            builder.icmp_unsigned("<", _LANE_INDEX, hi_v),
-        )
         fill_v = _splat(builder, _to_i16(builder, fill, signature.args[3]))
-        return builder.select(inside, v, fill_v)
+        return builder.select(_in_range(builder, _LANE_INDEX, lo_, hi_), v, fill_v)
 
     return sig, codegen
+
+
+def _in_range(builder, key, lo, hi):
+    """Lane mask of ``lo <= key < hi``; ``lo``, ``hi`` are i64 clamped to the 16-bit range."""
+    i64 = ir.IntType(64)
+
+    def clamp(x):
+        x = builder.select(builder.icmp_signed("<", x, ir.Constant(i64, 0)),
+                           ir.Constant(i64, 0), x)
+        return builder.select(builder.icmp_signed(">", x, ir.Constant(i64, 0xFFFF)),
+                              ir.Constant(i64, 0xFFFF), x)
+
+    lo_c = clamp(lo)
+    hi_c = clamp(hi)
+    hi_c = builder.select(builder.icmp_signed("<", hi_c, lo_c), lo_c, hi_c)
+    # lo <= key < hi  <=>  (key - lo) mod 2**16 < hi - lo, unsigned.
+    shifted = builder.sub(key, _splat(builder, builder.trunc(lo_c, _I16)))
+    width = _splat(builder, builder.trunc(builder.sub(hi_c, lo_c), _I16))
+    return builder.icmp_unsigned("<", shifted, width)
 
 
 def _select_compare(predicate, doc):
@@ -249,21 +254,7 @@ def vselect_between(typingctx, key, lo, hi, if_true, otherwise):
 
     def codegen(context, builder, signature, args):
         k, lo_, hi_, yes, no = args
-        i64 = ir.IntType(64)
-
-        def clamp(x):
-            x = builder.select(builder.icmp_signed("<", x, ir.Constant(i64, 0)),
-                               ir.Constant(i64, 0), x)
-            return builder.select(builder.icmp_signed(">", x, ir.Constant(i64, 0xFFFF)),
-                                  ir.Constant(i64, 0xFFFF), x)
-
-        lo_c = clamp(lo_)
-        hi_c = clamp(hi_)
-        hi_c = builder.select(builder.icmp_signed("<", hi_c, lo_c), lo_c, hi_c)
-        # lo <= key < hi  <=>  (key - lo) mod 2**16 < hi - lo, unsigned.
-        shifted = builder.sub(k, _splat(builder, builder.trunc(lo_c, _I16)))
-        width = _splat(builder, builder.trunc(builder.sub(hi_c, lo_c), _I16))
-        return builder.select(builder.icmp_unsigned("<", shifted, width), yes, no)
+        return builder.select(_in_range(builder, k, lo_, hi_), yes, no)
 
     return sig, codegen
 
