@@ -183,7 +183,8 @@ def test_confidence_kernel_matches_opencv_reference():
 
 def _classes_reference(best_left, best_right, d_min, n_disp, max_diff):
     # The definition, pixel by pixel: a failed pixel is a mismatch when some
-    # hypothesis maps it to a right pixel whose winner points back to it.
+    # hypothesis maps it to a right pixel whose winner points back to it (the
+    # occlusion/mismatch distinction of Hirschmüller 2008, semi-global matching).
     h, w = best_left.shape
     classes = np.zeros((h, w), np.uint8)
     for y in range(h):
