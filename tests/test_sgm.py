@@ -54,6 +54,8 @@ CASES = [
     (30, 50, -2, 33, 8, "census", 6, 400),  # path values beyond uint8: 16-bit buffers
     (9, 40, 35, 20, 8, "census", None, 60),  # most hypotheses beyond the right image
     (9, 40, -70, 20, 8, "census", None, 60),  # none inside it
+    (7, 30, -4, 260, 8, "census", 3, 60),  # past the register window of right winners
+    (8, 33, 1, 256, 4, "census", None, 60),  # a full register window
 ]
 
 
@@ -96,7 +98,9 @@ def test_lane_split_and_workspace_do_not_change_the_result():
         bounds = [_lane_columns(70, f, lanes) for f in (None, True, False)]
         out = _sgm_kernels.sgm_solve(
             cl, crev, np.zeros((1, 1, 1), np.uint8), False, left, d_min, n_disp, dp, 34,
-            34 + 2 * 96 + 1, 8, 96, 8.0, True, block_rows, *bounds, *ws.arrays(specs))
+            34 + 2 * 96 + 1, 8, 96, 8.0, True, block_rows,
+            *_sgm_kernels.cost_packing(34, 96, 34 + 2 * 96 + 1, True), *bounds,
+            *ws.arrays(specs))
         results.append(out)
     for other in results[1:]:
         for a, b in zip(results[0], other, strict=True):

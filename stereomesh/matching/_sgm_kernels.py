@@ -42,7 +42,9 @@ from stereomesh.matching._simd import (
     prefetch,
     vadd,
     vadds,
+    vand,
     vfill_outside,
+    vget,
     vhamming,
     vhmin,
     vlane_index,
@@ -54,6 +56,8 @@ from stereomesh.matching._simd import (
     vselect_less,
     vshift_in_high,
     vshift_in_low,
+    vshl,
+    vshr,
     vsplat,
     vstore,
     vstream,
@@ -137,7 +141,7 @@ def _load_path(work, index, block, nb, tail):
 
 @njit(cache=True, inline="always")
 def _columns(r, rs, fresh, x0, x1, mode, source, penalties, gray, ndir, crow, work, prev_off,
-             cur_off, pmin, pprev, pcur, part, fwd, fwd_row, ckpt, ckpt_min, ckpt_slot):
+             cur_off, pmin, pprev, pcur, part, fwd, fwd_row, ckpt, ckpt_min, ckpt_slot, packing):
     """Cost row and the non-horizontal paths of columns ``[x0, x1)`` of row ``r``.
 
     The paths arrive from row ``rs`` (``r - 1`` or ``r + 1``) whose values are in
@@ -147,17 +151,24 @@ def _columns(r, rs, fresh, x0, x1, mode, source, penalties, gray, ndir, crow, wo
     forward sum ``fwd[fwd_row]``. With ``ckpt_slot >= 0`` the new path values are
     also saved as checkpoint ``ckpt_slot``. ``source`` is ``(cl, crev, vol,
     use_volume, d_min, n_disp, invalid, pad_cost)`` (see :func:`_cost_row`),
-    ``penalties`` is ``(p1, p2, g_scale)``.
+    ``penalties`` is ``(p1, p2, g_scale)``, ``packing`` is ``(cost_bits,
+    fwd_pad)`` (see :func:`sgm_solve`): with ``cost_bits > 0`` mode 2 takes the
+    costs from the low bits of the forward sums instead of computing them.
     """
     cl, crev, vol, use_volume, d_min, n_disp, invalid, pad_cost = source
     p1, p2, g_scale = penalties
+    cost_bits, fwd_pad = packing
+    unpack = mode == 2 and cost_bits > 0
     W = gray.shape[1]
     dp = crow.shape[0] // (2 * W)
     nb = dp // LANES
     tail = n_disp - (nb - 1) * LANES
     p1v = vsplat(np.uint16(p1))
     inf = vsplat(np.uint16(INF16))
-    _cost_row(crow, r, x0, x1, cl, crev, vol, use_volume, d_min, n_disp, dp, invalid, pad_cost)
+    cost_mask = vsplat(np.uint16((1 << cost_bits) - 1))
+    if not unpack:
+        _cost_row(crow, r, x0, x1, cl, crev, vol, use_volume, d_min, n_disp, dp, invalid,
+                  pad_cost)
     for x in range(x0, x1):
         cb = ((r & 1) * W + x) * dp
         g = gray[r, x]
@@ -205,7 +216,20 @@ def _columns(r, rs, fresh, x0, x1, mode, source, penalties, gray, ndir, crow, wo
         for b in range(nb):
             o = b * LANES
             last = b + 1 == nb
-            c = vload(crow, cb + o)
+            if unpack:
+                packed = vload(fwd, fb + o)
+                # With large blocks the forward sums come from memory: ask ahead.
+                prefetch(fwd, fb + o + PREFETCH_AHEAD * dp)
+                c = vand(packed, cost_mask)
+                fsum = vshr(packed, cost_bits)
+                if last and tail < LANES:
+                    # Padded hypotheses were not packed faithfully (see sgm_solve).
+                    c = vfill_outside(c, 0, tail, pad_cost)
+                    fsum = vfill_outside(fsum, 0, tail, fwd_pad)
+                vstore(crow, cb + o, c)  # for the horizontal path
+            else:
+                c = vload(crow, cb + o)
+                fsum = inf
             hi0 = inf if last else _load_path(work, src0 + o + LANES, b + 1, nb, tail)
             l0 = _path_block(c, lo0, at0, hi0, p1v, base0, sub0)
             vstore(work, dst + o, l0)
@@ -232,9 +256,10 @@ def _columns(r, rs, fresh, x0, x1, mode, source, penalties, gray, ndir, crow, wo
                 if ckpt_slot >= 0:
                     vstore(ckpt, kb + W * dp + o, l1)
                     vstore(ckpt, kb + 2 * W * dp + o, l2)
-            if mode == 2:
+            if unpack:
+                acc = vadd(acc, fsum)
+            elif mode == 2:
                 acc = vadd(acc, vload(fwd, fb + o))
-                # With large blocks the forward sums come from memory: ask ahead.
                 prefetch(fwd, fb + o + PREFETCH_AHEAD * dp)
             if mode >= 1:
                 vstore(part, cb + o, acc)
@@ -245,6 +270,16 @@ def _columns(r, rs, fresh, x0, x1, mode, source, penalties, gray, ndir, crow, wo
         if ckpt_slot >= 0:
             for j in range(ndir):
                 ckpt_min[ckpt_slot, j, x] = pmin[pcur, j, x]
+
+
+@njit(cache=True, inline="always")
+def _pick(m1, m2, at, inf):
+    """Winner ``(cost, hypothesis, second cost)`` from the lane minima of :func:`_select_row`."""
+    bv = vhmin(m1)
+    k_of_min = vadd(at, vlane_index(0))
+    bk = np.int64(vhmin(vselect_equal(m1, vsplat(bv), k_of_min, inf)))
+    second = vhmin(vselect_between(k_of_min, bk - 1, bk + 2, m2, m1))
+    return bv, bk, second
 
 
 @njit(cache=True, inline="always")
@@ -260,60 +295,84 @@ def _select_row(r, final, d_min, n_disp, best_k, c_best, c_second, c_minus, c_pl
     ``k`` among lanes holding the overall minimum; the three excluded
     hypotheses ``bk - 1 .. bk + 1`` fall in three different lanes, each of which
     then offers its second-smallest cost if its smallest is the excluded one.
+    Two pixels, half a row apart, go through the loop together: the
+    reductions at the end of a pixel are a long dependency chain, and two
+    independent chains keep the core busy.
     """
     H, W = best_k.shape
     dp = final.shape[2]
     flat = final.reshape(-1)
     nb = dp // LANES
     inf = vsplat(np.uint16(INF16))
-    for x in range(W):
-        fb = ((r & 1) * W + x) * dp
-        # Hypotheses whose right pixel lies inside the image.
-        k_lo, k_hi = _valid_range(x, W, d_min, n_disp)
-        # Padded hypotheses never win, but they must not pose as a second best.
-        masked = k_lo > 0 or k_hi < dp
-        m1 = inf
-        m2 = inf
-        at = vsplat(np.uint16(0))
+    half = (W + 1) // 2
+    for i in range(half):
+        # With an odd width the last pair takes the last pixel twice.
+        xa = i
+        xb = min(i + half, W - 1)
+        fa = ((r & 1) * W + xa) * dp
+        fb = ((r & 1) * W + xb) * dp
+        # Hypotheses whose right pixel lies inside the image; the others, and
+        # the padded ones, must neither win nor pose as a second best.
+        alo, ahi = _valid_range(xa, W, d_min, n_disp)
+        blo, bhi = _valid_range(xb, W, d_min, n_disp)
+        am1 = inf
+        am2 = inf
+        a_at = vsplat(np.uint16(0))
+        bm1 = inf
+        bm2 = inf
+        b_at = vsplat(np.uint16(0))
         for b in range(nb):
             o = b * LANES
-            v = vload(final, fb + o)
-            if masked:
-                v = vfill_outside(v, k_lo - o, k_hi - o, INF16)
-            at = vselect_less(v, m1, vsplat(np.uint16(o)), at)
-            m2 = vmin(m2, vmax(m1, v))
-            m1 = vmin(m1, v)
-        bv = vhmin(m1)
-        k_of_min = vadd(at, vlane_index(0))
-        bk = np.int64(vhmin(vselect_equal(m1, vsplat(bv), k_of_min, inf)))
-        second = vhmin(vselect_between(k_of_min, bk - 1, bk + 2, m2, m1))
-        if k_hi <= k_lo:
-            best_k[r, x] = -1
-            c_best[r, x] = 0.0
-            c_second[r, x] = 0.0
-            c_minus[r, x] = 0.0
-            c_plus[r, x] = 0.0
-        else:
-            best_k[r, x] = bk
-            c_best[r, x] = bv
-            c_second[r, x] = np.inf if second == INF16 else np.float32(second)
-            c_minus[r, x] = flat[fb + bk - 1] if bk > k_lo else bv
-            c_plus[r, x] = flat[fb + bk + 1] if bk < k_hi - 1 else bv
+            key = vlane_index(o)
+            ov = vsplat(np.uint16(o))
+            va = vselect_between(key, alo, ahi, vload(final, fa + o), inf)
+            vb = vselect_between(key, blo, bhi, vload(final, fb + o), inf)
+            a_at = vselect_less(va, am1, ov, a_at)
+            am2 = vmin(am2, vmax(am1, va))
+            am1 = vmin(am1, va)
+            b_at = vselect_less(vb, bm1, ov, b_at)
+            bm2 = vmin(bm2, vmax(bm1, vb))
+            bm1 = vmin(bm1, vb)
+        a_best, a_k, a_second = _pick(am1, am2, a_at, inf)
+        b_best, b_k, b_second = _pick(bm1, bm2, b_at, inf)
+        for j in range(2):
+            x = xa if j == 0 else xb
+            f0 = fa if j == 0 else fb
+            k_lo = alo if j == 0 else blo
+            k_hi = ahi if j == 0 else bhi
+            bv = a_best if j == 0 else b_best
+            bk = a_k if j == 0 else b_k
+            second = a_second if j == 0 else b_second
+            if k_hi <= k_lo:
+                best_k[r, x] = -1
+                c_best[r, x] = 0.0
+                c_second[r, x] = 0.0
+                c_minus[r, x] = 0.0
+                c_plus[r, x] = 0.0
+            else:
+                best_k[r, x] = bk
+                c_best[r, x] = bv
+                c_second[r, x] = np.inf if second == INF16 else np.float32(second)
+                c_minus[r, x] = flat[f0 + bk - 1] if bk > k_lo else bv
+                c_plus[r, x] = flat[f0 + bk + 1] if bk < k_hi - 1 else bv
 
 
 @njit(cache=True, inline="always")
-def _horizontal(r, forward, gray, p1, p2, g_scale, crow, part, hbuf, out, out_row):
+def _horizontal(r, forward, gray, p1, p2, g_scale, crow, part, hbuf, out, out_row, cost_bits):
     """The horizontal path of row ``r``, added to the other paths in ``part[r & 1]``.
 
     The sum goes to row ``out_row`` of ``out`` (the forward sums of a block
     going down, the final sums of two rows going up). ``hbuf`` holds an
-    all-zero row (where the path starts afresh) and two ping-pong rows.
+    all-zero row (where the path starts afresh) and two ping-pong rows. Going
+    down with ``cost_bits > 0``, the forward sums are stored shifted left by
+    ``cost_bits`` with the matching cost in the low bits.
     """
     W = gray.shape[1]
     dp = crow.shape[0] // (2 * W)
     nb = dp // LANES
     p1v = vsplat(np.uint16(p1))
     inf = vsplat(np.uint16(INF16))
+    cost_mask = vsplat(np.uint16((1 << cost_bits) - 1))  # 0 leaves the sums as they are
     prev = dp
     cur = 2 * dp
     m = 0
@@ -336,12 +395,14 @@ def _horizontal(r, forward, gray, p1, p2, g_scale, crow, part, hbuf, out, out_ro
         for b in range(nb):
             o = b * LANES
             hi = inf if b + 1 == nb else vload(hbuf, src + o + LANES)
-            lv = _path_block(vload(crow, cb + o), lo, at, hi, p1v, base, sub)
+            c = vload(crow, cb + o)
+            lv = _path_block(c, lo, at, hi, p1v, base, sub)
             vstore(hbuf, cur + o, lv)
             mv = vmin(mv, lv)
             if forward:
                 # Read again only a block of rows later: past the caches.
-                vstream(out, ob + o, vadd(vload(part, cb + o), lv))
+                vstream(out, ob + o, vadd(vshl(vadd(vload(part, cb + o), lv), cost_bits),
+                                          vand(c, cost_mask)))
             else:
                 vstore(out, ob + o, vadd(vload(part, cb + o), lv))
             lo = at
@@ -350,9 +411,87 @@ def _horizontal(r, forward, gray, p1, p2, g_scale, crow, part, hbuf, out, out_ro
         prev, cur = cur, prev
 
 
+WINDOW_VECTORS = 8  # hypotheses up to 8 * LANES: right winners from a register window
+
+
+@njit(cache=True, inline="always")
+def _merge_right(v, o, m, a):
+    """Fold one vector of sums into the window minima ``m`` and their hypotheses ``a``.
+
+    A smaller sum takes the entry; an equal one keeps the smaller hypothesis,
+    so the result does not depend on the order pixels arrive in.
+    """
+    k = vlane_index(o)
+    return vmin(m, v), vselect_less(v, m, k, vselect_equal(v, m, vmin(a, k), a))
+
+
 @njit(cache=True, inline="always")
 def _right_winners(r, final, d_min, n_disp, rmin, rarg, best_right):
     """Right-image winners of row ``r`` from its final sums ``final[r & 1]``.
+
+    Right pixel ``xr`` takes the hypothesis ``k`` minimising the sum at left pixel
+    ``xr + d_min + k`` (smallest ``k`` on ties; -1 if none is valid): the
+    minimum along a diagonal ``jj = W - 1 - x + k`` of the row's sums.
+
+    With up to ``WINDOW_VECTORS * LANES`` hypotheses, the left pixels are
+    visited from right to left and the diagonals they touch are held in
+    registers: a window of ``jj`` from ``W - 1 - x`` on. After each pixel the
+    lowest diagonal is complete, and the window moves up one lane. Wider
+    ranges gather the minima in the buffers ``rmin``/``rarg`` (indexed by
+    ``jj``), visiting pixels ``LANES`` apart so that each load meets the
+    aligned store before it.
+    """
+    H, W = best_right.shape
+    dp = final.shape[2]
+    nb = dp // LANES
+    row = (r & 1) * W * dp
+    if nb > WINDOW_VECTORS:
+        _right_winners_buffered(r, final, d_min, n_disp, rmin, rarg, best_right)
+        return
+    for xr in range(W):
+        best_right[r, xr] = -1
+    inf = vsplat(np.uint16(INF16))
+    m0, m1, m2, m3, m4, m5, m6, m7 = inf, inf, inf, inf, inf, inf, inf, inf
+    a0, a1, a2, a3, a4, a5, a6, a7 = inf, inf, inf, inf, inf, inf, inf, inf
+    for i in range(W + dp):
+        if i < W:
+            fb = row + (W - 1 - i) * dp
+            m0, a0 = _merge_right(vload(final, fb), 0, m0, a0)
+            if nb > 1:
+                m1, a1 = _merge_right(vload(final, fb + LANES), LANES, m1, a1)
+            if nb > 2:
+                m2, a2 = _merge_right(vload(final, fb + 2 * LANES), 2 * LANES, m2, a2)
+            if nb > 3:
+                m3, a3 = _merge_right(vload(final, fb + 3 * LANES), 3 * LANES, m3, a3)
+            if nb > 4:
+                m4, a4 = _merge_right(vload(final, fb + 4 * LANES), 4 * LANES, m4, a4)
+            if nb > 5:
+                m5, a5 = _merge_right(vload(final, fb + 5 * LANES), 5 * LANES, m5, a5)
+            if nb > 6:
+                m6, a6 = _merge_right(vload(final, fb + 6 * LANES), 6 * LANES, m6, a6)
+            if nb > 7:
+                m7, a7 = _merge_right(vload(final, fb + 7 * LANES), 7 * LANES, m7, a7)
+        elif W - 1 - d_min - i < 0:
+            break  # the remaining diagonals belong to no right pixel
+        # Diagonal jj = i is complete: right pixel W - 1 - d_min - i.
+        xr = W - 1 - d_min - i
+        if 0 <= xr < W:
+            k = np.int64(vget(a0, 0))
+            best_right[r, xr] = k if k < n_disp else -1
+        # Hypotheses count from the window's start: moving it up lowers them by one.
+        m0, m1, m2, m3 = (vshift_in_high(m0, m1), vshift_in_high(m1, m2),
+                          vshift_in_high(m2, m3), vshift_in_high(m3, m4))
+        m4, m5, m6, m7 = (vshift_in_high(m4, m5), vshift_in_high(m5, m6),
+                          vshift_in_high(m6, m7), vshift_in_high(m7, inf))
+        a0, a1, a2, a3 = (vshift_in_high(a0, a1), vshift_in_high(a1, a2),
+                          vshift_in_high(a2, a3), vshift_in_high(a3, a4))
+        a4, a5, a6, a7 = (vshift_in_high(a4, a5), vshift_in_high(a5, a6),
+                          vshift_in_high(a6, a7), vshift_in_high(a7, inf))
+
+
+@njit(cache=True, inline="always")
+def _right_winners_buffered(r, final, d_min, n_disp, rmin, rarg, best_right):
+    """:func:`_right_winners` for any number of hypotheses, through memory buffers.
 
     Right pixel ``xr`` takes the hypothesis ``k`` minimising the sum at left pixel
     ``xr + d_min + k`` (smallest ``k`` on ties; -1 if none is valid). The
@@ -498,6 +637,31 @@ def _schedule(H, block_rows):
     return steps[:i]
 
 
+def cost_packing(max_cost, p2, pad_cost, diagonals):
+    """``(cost_bits, fwd_pad)`` for :func:`sgm_solve`; ``cost_bits`` 0 where packing does not fit.
+
+    The forward sums of the ``ndir + 1`` paths going down are each at most
+    ``max_cost + p2`` (a path value never exceeds its cost plus ``P2`` above the
+    previous minimum, which is subtracted), so they fit beside a cost of
+    ``cost_bits`` bits in 16 when ``(ndir + 1) · (max_cost + p2) < 2 ** (16 -
+    cost_bits)``. ``fwd_pad`` is above every real total of all paths.
+
+    Examples
+    --------
+    >>> cost_packing(34, 96, 227, True)  # census 7 x 5, the default penalties
+    (6, 1041)
+    >>> cost_packing(255, 96, 448, True)
+    (0, 0)
+    """
+    paths_down = (3 if diagonals else 1) + 1
+    bits = max(1, int(max_cost).bit_length())
+    if paths_down * (max_cost + p2) >= 1 << (16 - bits):
+        return 0, 0
+    fwd_pad = 2 * paths_down * (max_cost + p2) + 1
+    assert fwd_pad + paths_down * (pad_cost + p2) <= INF16
+    return bits, fwd_pad
+
+
 def buffer_shapes(H, W, dp, diagonals, block_rows, narrow_paths):
     """``(shape, dtype)`` of the work buffers :func:`sgm_solve` takes, in its argument order.
 
@@ -518,8 +682,9 @@ def buffer_shapes(H, W, dp, diagonals, block_rows, narrow_paths):
 
 @njit(cache=True, parallel=True)
 def sgm_solve(cl, crev, vol, use_volume, gray, d_min, n_disp, dp, invalid, pad_cost, p1, p2,
-              g_scale, diagonals, block_rows, bounds_even, bounds_down, bounds_up, work_down,
-              work_up, ckpt, ckpt_min, fwd, final, crow_down, crow_up, part_down, part_up):
+              g_scale, diagonals, block_rows, cost_bits, fwd_pad, bounds_even, bounds_down,
+              bounds_up, work_down, work_up, ckpt, ckpt_min, fwd, final, crow_down, crow_up,
+              part_down, part_up):
     """Semi-global matching with 4 or 8 paths and the winners of both images.
 
     Costs come from census strings in 16-bit planes (``cl`` and ``crev``, see
@@ -535,6 +700,13 @@ def sgm_solve(cl, crev, vol, use_volume, gray, d_min, n_disp, dp, invalid, pad_c
     sums of the block are recomputed from its checkpoint into a block buffer,
     and the pass up adds the paths from below and picks the winners (see
     :func:`_schedule`). The result is exactly that of storing every forward sum.
+
+    With ``cost_bits > 0`` the forward sums are stored shifted left by that
+    many bits with the matching cost in the low bits, so that the pass up
+    need not compute the costs again. The caller ensures that every real
+    forward sum and cost fits (see :func:`cost_packing`). Padded hypotheses do
+    not fit: the pass up reads their costs as ``pad_cost`` and their forward
+    sums as ``fwd_pad``, which must exceed every real total.
 
     Returns ``best_k`` (int32, -1 where no hypothesis is valid), ``c_best``,
     ``c_second``, ``c_minus``, ``c_plus`` (float32, see :func:`_select_row`)
@@ -561,6 +733,7 @@ def sgm_solve(cl, crev, vol, use_volume, gray, d_min, n_disp, dp, invalid, pad_c
     right_lane = min(1, lanes - 1)
     source = (cl, crev, vol, use_volume, d_min, n_disp, invalid, pad_cost)
     penalties = (p1, p2, g_scale)
+    packing = (cost_bits, fwd_pad)
     steps = _schedule(H, block_rows)
     # Column split per phase, adapted to the measured time of each lane (see _rebalance).
     edges = np.empty((3, lanes + 1), np.float64)
@@ -600,10 +773,10 @@ def sgm_solve(cl, crev, vol, use_volume, gray, d_min, n_disp, dp, invalid, pad_c
                 _columns(st[_COLS], st[_FROM], st[_FRESH] == 1, bounds[t], bounds[t + 1],
                          st[_MODE], source, penalties, gray, ndir, crow, work,
                          dp + parity * half, dp + (1 - parity) * half, pmin, parity, 1 - parity,
-                         part, fwd, st[_FWD_ROW], ckpt, ckpt_min, st[_SAVE])
+                         part, fwd, st[_FWD_ROW], ckpt, ckpt_min, st[_SAVE], packing)
             if t == 0 and st[_HORIZ] >= 0:
                 _horizontal(st[_HORIZ], not up, gray, p1, p2, g_scale, crow, part, hbuf, out,
-                            st[_HORIZ_OUT])
+                            st[_HORIZ_OUT], cost_bits)
             if t == right_lane and st[_SELECT] >= 0:
                 _select_row(st[_SELECT], final, d_min, n_disp, best_k, c_best, c_second,
                             c_minus, c_plus)

@@ -161,6 +161,7 @@ def _binary(emit, doc):
 
 vadd = _binary(lambda b, x, y: b.add(x, y), "Lane-wise ``a + b`` modulo 2**16.")
 vsub = _binary(lambda b, x, y: b.sub(x, y), "Lane-wise ``a - b`` modulo 2**16.")
+vand = _binary(lambda b, x, y: b.and_(x, y), "Lane-wise bitwise ``a & b``.")
 vmin = _binary(lambda b, x, y: b.select(b.icmp_unsigned("<", x, y), x, y), "Lane-wise minimum.")
 vmax = _binary(lambda b, x, y: b.select(b.icmp_unsigned(">", x, y), x, y), "Lane-wise maximum.")
 vadds = _binary(

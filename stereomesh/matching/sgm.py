@@ -194,13 +194,15 @@ def semi_global_matching(
     # Path values never exceed the largest cost plus P2 (the step term is at
     # most P2 above the previous minimum, which is subtracted).
     narrow = max_cost + p2 <= 255
+    # Costs travel in the low bits of the stored forward sums when they fit.
+    packing = _sgm_kernels.cost_packing(max_cost, p2, pad_cost, paths == 8)
     shapes = _sgm_kernels.buffer_shapes(h, w, dp, paths == 8, block_rows, narrow)
     buffers = (workspace or Workspace()).arrays(shapes)
     best_k, c1, c2, cm, cp, best_right = _sgm_kernels.sgm_solve(
         left_planes, right_planes, volume, cost != "census", left, int(d_min), int(n_disp), dp,
         int(invalid), int(pad_cost), int(p1), int(p2), float(p2_gradient_scale), paths == 8,
-        block_rows, _lane_columns(w, None), _lane_columns(w, True), _lane_columns(w, False),
-        *buffers,
+        block_rows, *packing, _lane_columns(w, None), _lane_columns(w, True),
+        _lane_columns(w, False), *buffers,
     )
     labels = np.maximum(best_k, 0)
     if cost == "census":
