@@ -4,20 +4,21 @@ The solver never holds a matching-cost volume: a row of costs is computed when
 a pass reaches it, and the only image-sized buffer is the ``(H, W, Dp)`` uint16
 sum of path costs. Two passes over the rows:
 
-* forward (top to bottom): the left-to-right path and the paths arriving from
+* forward (top to bottom): both horizontal paths and the paths arriving from
   the row above (vertical and, with 8 paths, both diagonals); their sum is
   written into the volume;
-* backward (bottom to top): the right-to-left path and the paths arriving from
-  the row below are added, which leaves the full sum.
+* backward (bottom to top): the paths arriving from the row below are added,
+  which leaves the full sum.
 
 A third, row-parallel kernel picks winners for the left and the right image
 from the sum. All arithmetic is on 16-bit vector lanes (:mod:`._simd`).
 
 Parallel layout: in the pass over row ``r`` the columns are split into one
 slice per worker ("lane"); each lane computes the cost row and the
-vertical/diagonal paths of its columns. Lane 0 also runs the horizontal path of
-row ``r - 1`` (``r + 1`` going up) over the whole row, whose cost row the
-previous step finished; it gets fewer columns to make up for it.
+vertical/diagonal paths of its columns. Going down, lane 0 also runs both
+horizontal paths of row ``r - 1``, whose cost row the previous step finished,
+interleaved: each is one long dependency chain along the row. Going up, lane 1
+picks the winners of row ``r + 1``. Both get fewer columns to make up for it.
 
 Padding: hypotheses ``n_disp <= k < Dp`` exist only to fill the last vector.
 Their cost ``pad_cost`` exceeds every reachable path value by more than ``P2``,
@@ -148,8 +149,9 @@ def _columns(r, rs, fresh, x0, x1, mode, source, penalties, gray, ndir, crow, wo
     ``work`` at ``prev_off``, or with ``fresh`` start afresh (from the all-zero
     row at the start of ``work``). ``mode`` 0 only advances the paths; 1 writes
     their sum to the row buffer ``part[r & 1]``; 2 writes their sum plus the
-    forward sum ``fwd[fwd_row]``. With ``ckpt_slot >= 0`` the new path values are
-    also saved as checkpoint ``ckpt_slot``. ``source`` is ``(cl, crev, vol,
+    forward sum ``fwd[fwd_row]`` (then ``part`` holds the final sums). With
+    ``ckpt_slot >= 0`` the new path values are also saved as checkpoint
+    ``ckpt_slot``. ``source`` is ``(cl, crev, vol,
     use_volume, d_min, n_disp, invalid, pad_cost)`` (see :func:`_cost_row`),
     ``penalties`` is ``(p1, p2, g_scale)``, ``packing`` is ``(cost_bits,
     fwd_pad)`` (see :func:`sgm_solve`): with ``cost_bits > 0`` mode 2 takes the
@@ -226,7 +228,6 @@ def _columns(r, rs, fresh, x0, x1, mode, source, penalties, gray, ndir, crow, wo
                     # Padded hypotheses were not packed faithfully (see sgm_solve).
                     c = vfill_outside(c, 0, tail, pad_cost)
                     fsum = vfill_outside(fsum, 0, tail, fwd_pad)
-                vstore(crow, cb + o, c)  # for the horizontal path
             else:
                 c = vload(crow, cb + o)
                 fsum = inf
@@ -358,14 +359,16 @@ def _select_row(r, final, d_min, n_disp, best_k, c_best, c_second, c_minus, c_pl
 
 
 @njit(cache=True, inline="always")
-def _horizontal(r, forward, gray, p1, p2, g_scale, crow, part, hbuf, out, out_row, cost_bits):
-    """The horizontal path of row ``r``, added to the other paths in ``part[r & 1]``.
+def _horizontal(r, gray, p1, p2, g_scale, crow, part, hbuf, out, out_row, cost_bits):
+    """Both horizontal paths of row ``r``, added to the other paths in ``part[r & 1]``.
 
-    The sum goes to row ``out_row`` of ``out`` (the forward sums of a block
-    going down, the final sums of two rows going up). ``hbuf`` holds an
-    all-zero row (where the path starts afresh) and two ping-pong rows. Going
-    down with ``cost_bits > 0``, the forward sums are stored shifted left by
-    ``cost_bits`` with the matching cost in the low bits.
+    The sums go to row ``out_row`` of the forward sums ``out``; with
+    ``cost_bits > 0`` shifted left by ``cost_bits`` with the matching cost in
+    the low bits. The two directions run interleaved, the left-to-right one
+    at ``x = i`` and the other at ``W - 1 - i``: whichever reaches a pixel
+    first adds its values into ``part``, the second writes the sum out.
+    ``hbuf`` holds an all-zero row (where a path starts afresh) and two
+    ping-pong rows per direction.
     """
     W = gray.shape[1]
     dp = crow.shape[0] // (2 * W)
@@ -373,42 +376,73 @@ def _horizontal(r, forward, gray, p1, p2, g_scale, crow, part, hbuf, out, out_ro
     p1v = vsplat(np.uint16(p1))
     inf = vsplat(np.uint16(INF16))
     cost_mask = vsplat(np.uint16((1 << cost_bits) - 1))  # 0 leaves the sums as they are
-    prev = dp
-    cur = 2 * dp
-    m = 0
+    f_prev, f_cur = dp, 2 * dp
+    b_prev, b_cur = 3 * dp, 4 * dp
+    fm = 0
+    bm = 0
     for i in range(W):
-        x = i if forward else W - 1 - i
-        cb = ((r & 1) * W + x) * dp
-        ob = (out_row * W + x) * dp
+        xf = i
+        xb = W - 1 - i
+        # A pixel's first visitor adds into part; in the middle of an odd row
+        # the left-to-right path comes first.
+        f_first = 2 * i <= W - 1
+        b_first = 2 * i < W - 1
+        cf = ((r & 1) * W + xf) * dp
+        cb = ((r & 1) * W + xb) * dp
+        of = (out_row * W + xf) * dp
+        ob = (out_row * W + xb) * dp
         if i == 0:
-            src = 0
-            m = 0
-            pen = 0
+            f_src = 0
+            b_src = 0
+            f_pen = 0
+            b_pen = 0
         else:
-            src = prev
-            pen = _penalty2(p1, p2, g_scale, gray[r, x], gray[r, x - 1 if forward else x + 1])
-        base = vsplat(np.uint16(m + pen))
-        sub = vsplat(np.uint16(m))
-        mv = inf
-        lo = inf
-        at = vload(hbuf, src)
+            f_src = f_prev
+            b_src = b_prev
+            f_pen = _penalty2(p1, p2, g_scale, gray[r, xf], gray[r, xf - 1])
+            b_pen = _penalty2(p1, p2, g_scale, gray[r, xb], gray[r, xb + 1])
+        f_base = vsplat(np.uint16(fm + f_pen))
+        f_sub = vsplat(np.uint16(fm))
+        b_base = vsplat(np.uint16(bm + b_pen))
+        b_sub = vsplat(np.uint16(bm))
+        f_mv = inf
+        b_mv = inf
+        f_lo = inf
+        b_lo = inf
+        f_at = vload(hbuf, f_src)
+        b_at = vload(hbuf, b_src)
         for b in range(nb):
             o = b * LANES
-            hi = inf if b + 1 == nb else vload(hbuf, src + o + LANES)
-            c = vload(crow, cb + o)
-            lv = _path_block(c, lo, at, hi, p1v, base, sub)
-            vstore(hbuf, cur + o, lv)
-            mv = vmin(mv, lv)
-            if forward:
-                # Read again only a block of rows later: past the caches.
-                vstream(out, ob + o, vadd(vshl(vadd(vload(part, cb + o), lv), cost_bits),
-                                          vand(c, cost_mask)))
+            last = b + 1 == nb
+            f_hi = inf if last else vload(hbuf, f_src + o + LANES)
+            b_hi = inf if last else vload(hbuf, b_src + o + LANES)
+            f_c = vload(crow, cf + o)
+            b_c = vload(crow, cb + o)
+            f_l = _path_block(f_c, f_lo, f_at, f_hi, p1v, f_base, f_sub)
+            b_l = _path_block(b_c, b_lo, b_at, b_hi, p1v, b_base, b_sub)
+            vstore(hbuf, f_cur + o, f_l)
+            vstore(hbuf, b_cur + o, b_l)
+            f_mv = vmin(f_mv, f_l)
+            b_mv = vmin(b_mv, b_l)
+            f_lo = f_at
+            f_at = f_hi
+            b_lo = b_at
+            b_at = b_hi
+            f_sum = vadd(vload(part, cf + o), f_l)
+            if f_first:
+                vstore(part, cf + o, f_sum)
             else:
-                vstore(out, ob + o, vadd(vload(part, cb + o), lv))
-            lo = at
-            at = hi
-        m = np.int64(vhmin(mv))
-        prev, cur = cur, prev
+                # Read again only a block of rows later: past the caches.
+                vstream(out, of + o, vadd(vshl(f_sum, cost_bits), vand(f_c, cost_mask)))
+            b_sum = vadd(vload(part, cb + o), b_l)
+            if b_first:
+                vstore(part, cb + o, b_sum)
+            else:
+                vstream(out, ob + o, vadd(vshl(b_sum, cost_bits), vand(b_c, cost_mask)))
+        fm = np.int64(vhmin(f_mv))
+        bm = np.int64(vhmin(b_mv))
+        f_prev, f_cur = f_cur, f_prev
+        b_prev, b_cur = b_cur, b_prev
 
 
 WINDOW_VECTORS = 8  # hypotheses up to 8 * LANES: right winners from a register window
@@ -567,10 +601,10 @@ def _schedule(H, block_rows):
 
     Pass 1 goes down to the last checkpoint, saving one at the end of every
     block. Then, block by block from the bottom, the block's forward sums are
-    recomputed from its checkpoint (``_DOWN`` steps, the horizontal path one row
-    behind the others) and the pass up crosses the block (``_UP`` steps, the
-    horizontal path one row behind, the winners two rows behind; they catch up
-    in the next block, or in two last steps).
+    recomputed from its checkpoint (``_DOWN`` steps, the horizontal paths one
+    row behind the others) and the pass up crosses the block (``_UP`` steps,
+    the winners one row behind; they catch up in the next block, or in a last
+    step).
     """
     n_blocks = (H + block_rows - 1) // block_rows
     # Blocks are counted from the bottom, so that a short block is the top one
@@ -616,7 +650,7 @@ def _schedule(H, block_rows):
                 steps[i, _HORIZ_OUT] = r - 1 - a
             parity = 1 - parity
             i += 1
-        extra = 2 if block == 0 else 0
+        extra = 1 if block == 0 else 0
         for step in range(b - a + extra):
             r = b - 1 - step
             steps[i, _PHASE] = _UP
@@ -628,10 +662,7 @@ def _schedule(H, block_rows):
                 steps[i, _MODE] = 2
                 steps[i, _FWD_ROW] = r - a
             if 0 <= r + 1 < H:
-                steps[i, _HORIZ] = r + 1
-                steps[i, _HORIZ_OUT] = (r + 1) & 1
-            if 0 <= r + 2 < H:
-                steps[i, _SELECT] = r + 2
+                steps[i, _SELECT] = r + 1
             up_parity = 1 - up_parity
             i += 1
     return steps[:i]
@@ -640,7 +671,7 @@ def _schedule(H, block_rows):
 def cost_packing(max_cost, p2, pad_cost, diagonals):
     """``(cost_bits, fwd_pad)`` for :func:`sgm_solve`; ``cost_bits`` 0 where packing does not fit.
 
-    The forward sums of the ``ndir + 1`` paths going down are each at most
+    The forward sums of the ``ndir + 2`` paths going down are each at most
     ``max_cost + p2`` (a path value never exceeds its cost plus ``P2`` above the
     previous minimum, which is subtracted), so they fit beside a cost of
     ``cost_bits`` bits in 16 when ``(ndir + 1) · (max_cost + p2) < 2 ** (16 -
@@ -653,12 +684,13 @@ def cost_packing(max_cost, p2, pad_cost, diagonals):
     >>> cost_packing(255, 96, 448, True)
     (0, 0)
     """
-    paths_down = (3 if diagonals else 1) + 1
+    ndir = 3 if diagonals else 1
+    paths_down = ndir + 2
     bits = max(1, int(max_cost).bit_length())
     if paths_down * (max_cost + p2) >= 1 << (16 - bits):
         return 0, 0
-    fwd_pad = 2 * paths_down * (max_cost + p2) + 1
-    assert fwd_pad + paths_down * (pad_cost + p2) <= INF16
+    fwd_pad = 2 * (ndir + 1) * (max_cost + p2) + 1
+    assert fwd_pad + ndir * (pad_cost + p2) <= INF16
     return bits, fwd_pad
 
 
@@ -676,15 +708,14 @@ def buffer_shapes(H, W, dp, diagonals, block_rows, narrow_paths):
     row2 = (2 * W * dp,)
     return [(work, path), (work, path), ((n_ckpt, ndir, W, dp), path),
             ((n_ckpt, ndir, W), np.uint16), ((block_rows, W, dp), np.uint16),
-            ((2, W, dp), np.uint16), (row2, np.uint16), (row2, np.uint16), (row2, np.uint16),
-            (row2, np.uint16)]
+            ((2, W, dp), np.uint16), (row2, np.uint16), (row2, np.uint16), (row2, np.uint16)]
 
 
 @njit(cache=True, parallel=True)
 def sgm_solve(cl, crev, vol, use_volume, gray, d_min, n_disp, dp, invalid, pad_cost, p1, p2,
               g_scale, diagonals, block_rows, cost_bits, fwd_pad, bounds_even, bounds_down,
               bounds_up, work_down, work_up, ckpt, ckpt_min, fwd, final, crow_down, crow_up,
-              part_down, part_up):
+              part_down):
     """Semi-global matching with 4 or 8 paths and the winners of both images.
 
     Costs come from census strings in 16-bit planes (``cl`` and ``crev``, see
@@ -721,7 +752,11 @@ def sgm_solve(cl, crev, vol, use_volume, gray, d_min, n_disp, dp, invalid, pad_c
     work_up[:dp] = 0
     pmin_down = np.zeros((2, ndir, W), np.uint16)
     pmin_up = np.zeros((2, ndir, W), np.uint16)
-    hbuf = np.zeros(3 * dp, np.uint16)
+    # Vector-aligned: the horizontal paths read each store back at once.
+    hbuf_memory = np.zeros(5 * dp + LANES, np.uint16)
+    start = ((-hbuf_memory.ctypes.data) % (2 * LANES)) // 2
+    hbuf = hbuf_memory[start : start + 5 * dp]
+    final_flat = final.reshape(-1)
     rmin = np.empty(W + dp, np.uint16)
     rarg = np.empty(W + dp, np.uint16)
     best_k = np.empty((H, W), np.int32)
@@ -752,8 +787,7 @@ def sgm_solve(cl, crev, vol, use_volume, gray, d_min, n_disp, dp, invalid, pad_c
         work = work_up if up else work_down
         pmin = pmin_up if up else pmin_down
         crow = crow_up if up else crow_down
-        part = part_up if up else part_down
-        out = final if up else fwd
+        part = final_flat if up else part_down
         parity = st[_PARITY]
         for j in range(lanes + 1):
             bounds[j] = min(max(np.int64(edges[phase, j] + 0.5), 0), W)
@@ -775,7 +809,7 @@ def sgm_solve(cl, crev, vol, use_volume, gray, d_min, n_disp, dp, invalid, pad_c
                          dp + parity * half, dp + (1 - parity) * half, pmin, parity, 1 - parity,
                          part, fwd, st[_FWD_ROW], ckpt, ckpt_min, st[_SAVE], packing)
             if t == 0 and st[_HORIZ] >= 0:
-                _horizontal(st[_HORIZ], not up, gray, p1, p2, g_scale, crow, part, hbuf, out,
+                _horizontal(st[_HORIZ], gray, p1, p2, g_scale, crow, part, hbuf, fwd,
                             st[_HORIZ_OUT], cost_bits)
             if t == right_lane and st[_SELECT] >= 0:
                 _select_row(st[_SELECT], final, d_min, n_disp, best_k, c_best, c_second,

@@ -21,11 +21,12 @@ from stereomesh.matching.winners import Winners
 MAX_P2 = 1000
 
 # Relative work of the parts of one row, measured on this project's reference
-# machine (2 cores, AVX-512): per pass, the horizontal path that lane 0 sweeps
-# over the whole row, and going up, the winner selection that lane 1 runs,
-# both against the vertical and diagonal paths of all columns (= 1). They only
-# balance the lanes; results do not depend on them.
-_HORIZONTAL_LOAD = {True: (0.29, 0.0), False: (0.23, 0.49)}
+# machine (2 cores, AVX-512): going down, the two horizontal paths that lane 0
+# sweeps over the whole row, and going up, the winner selection that lane 1
+# runs, both against the vertical and diagonal paths of all columns (= 1).
+# They only set the first split; the solver rebalances as it measures, and
+# results do not depend on either.
+_HORIZONTAL_LOAD = {True: (0.45, 0.0), False: (0.0, 0.45)}
 
 
 def aggregate_costs(
@@ -310,9 +311,9 @@ def plan_block_rows(height: int, width: int, n_disp: int, budget_bytes: int, *,
 def _lane_columns(width: int, forward: bool | None, lanes: int | None = None) -> np.ndarray:
     """Column slices of the worker lanes for one pass (see ``_sgm_kernels``).
 
-    Lane 0 sweeps the horizontal path and, going up, lane 1 picks the winners;
+    Going down, lane 0 sweeps the horizontal paths; going up, lane 1 picks the winners;
     the columns are shared so that every lane ends each row at the same time.
-    ``forward`` None: a pass with no horizontal path (even shares).
+    ``forward`` None: the first pass, with neither (even shares).
     """
     if lanes is None:
         import numba
