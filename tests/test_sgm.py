@@ -232,3 +232,18 @@ def test_consistency_classes_match_their_definition(max_diff):
     # split of the check itself is compared, without the depth-step rule.
     want = _classes_reference(best_left, best_right, d_min, n_disp, max_diff)
     np.testing.assert_array_equal(classes, want)
+
+
+@pytest.mark.parametrize("window", [(9, 7), (3, 3), (7, 5), (1, 3), (5, 1)])
+def test_census_planes_of_image_equal_the_split_strings(window):
+    # The plane-by-plane 16-bit census must put every comparison at the bit
+    # the 64-bit strings give it, for windows of one to four planes.
+    ww, wh = window
+    gray = (np.random.default_rng(1).random((23, 41)) * 255).astype(np.float32)
+    planes = -(-(ww * wh - 1) // 16)
+    padded = _kernels.edge_padded(gray, wh // 2, ww // 2)
+    for reverse in (False, True):
+        np.testing.assert_array_equal(
+            _kernels.census_planes_of_image(padded, ww, wh, planes, 2, 7, reverse),
+            _kernels.census_planes(_kernels.census_transform(padded, ww, wh), planes, 2, 7,
+                                   reverse))

@@ -111,17 +111,45 @@ def census_transform(padded, win_w, win_h):
 
 @njit(cache=True, parallel=True)
 def census_planes_of_image(padded, win_w, win_h, planes, pad_left, pad_right, reverse):
-    """:func:`census_transform` written straight into 16-bit planes (see :func:`census_planes`)."""
+    """:func:`census_transform` written straight into 16-bit planes (see :func:`census_planes`).
+
+    Each plane is built on its own in 16-bit lanes, four times as many per
+    vector as the 64-bit strings: comparison ``j`` (in window order, centre
+    skipped) is bit ``n - 1 - j`` of the ``n``-bit string.
+    """
     H = padded.shape[0] - 2 * (win_h // 2)
     W = padded.shape[1] - 2 * (win_w // 2)
+    rw = win_w // 2
+    rh = win_h // 2
+    n_bits = win_w * win_h - 1
     out = np.zeros((planes, H, pad_left + W + pad_right), np.uint16)
+    one = np.uint16(1)
+    zero = np.uint16(0)
     for y in prange(H):
-        row = np.zeros(W, np.uint64)
-        _census_row(padded, y, win_w, win_h, row)
-        for x in range(W):
-            s = row[W - 1 - x if reverse else x]
-            for p in range(planes):
-                out[p, y, pad_left + x] = np.uint16((s >> np.uint64(16 * p)) & np.uint64(0xFFFF))
+        row = np.empty(W, np.uint16)
+        centre = padded[y + rh, rw : rw + W]
+        for p in range(planes):
+            row[:] = 0
+            # Comparisons whose bits fall in this plane, highest bit first.
+            j_first = max(0, n_bits - 16 * (p + 1))
+            j_last = n_bits - 1 - 16 * p
+            j = 0
+            for dy in range(-rh, rh + 1):
+                for dx in range(-rw, rw + 1):
+                    if dy == 0 and dx == 0:
+                        continue
+                    if j_first <= j <= j_last:
+                        src = padded[y + rh + dy, rw + dx : rw + dx + W]
+                        for x in range(W):
+                            row[x] = (row[x] << one) | (one if src[x] < centre[x] else zero)
+                    j += 1
+            dst = out[p, y]
+            if reverse:
+                for x in range(W):
+                    dst[pad_left + x] = row[W - 1 - x]
+            else:
+                for x in range(W):
+                    dst[pad_left + x] = row[x]
     return out
 
 
