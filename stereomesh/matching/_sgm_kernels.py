@@ -127,17 +127,24 @@ def _path_block(cost, below, cur, above, p1v, base, sub):
 
 
 @njit(cache=True, inline="always")
-def _load_path(work, index, block, nb, tail):
+def _load_path(work, index, block, fix_block, tail):
     """Path values of one vector of hypotheses from ``work``.
 
     In uint8 buffers the padded hypotheses past the ``tail`` real ones of the
     last vector saturate at 255, which no longer keeps them out of the minimum
-    beside the last real hypothesis; they are read as 0xFFFF instead.
+    beside the last real hypothesis; in block ``fix_block`` (see
+    :func:`_pad_fix_block`) they are read as 0xFFFF instead.
     """
     v = vload(work, index)
-    if work.itemsize == 1 and block == nb - 1 and tail < LANES:
+    if block == fix_block:
         v = vfill_outside(v, 0, tail, INF16)
     return v
+
+
+@njit(cache=True, inline="always")
+def _pad_fix_block(work, nb, tail):
+    """The block :func:`_load_path` must mend, or -1: one compare per load."""
+    return nb - 1 if work.itemsize == 1 and tail < LANES else -1
 
 
 @njit(cache=True, inline="always")
@@ -165,6 +172,7 @@ def _columns(r, rs, fresh, x0, x1, mode, source, penalties, gray, ndir, crow, wo
     dp = crow.shape[0] // (2 * W)
     nb = dp // LANES
     tail = n_disp - (nb - 1) * LANES
+    fix_block = _pad_fix_block(work, nb, tail)
     p1v = vsplat(np.uint16(p1))
     inf = vsplat(np.uint16(INF16))
     cost_mask = vsplat(np.uint16((1 << cost_bits) - 1))
@@ -209,9 +217,9 @@ def _columns(r, rs, fresh, x0, x1, mode, source, penalties, gray, ndir, crow, wo
         lo0 = inf
         lo1 = inf
         lo2 = inf
-        at0 = _load_path(work, src0, 0, nb, tail)
-        at1 = _load_path(work, src1, 0, nb, tail)
-        at2 = _load_path(work, src2, 0, nb, tail)
+        at0 = _load_path(work, src0, 0, fix_block, tail)
+        at1 = _load_path(work, src1, 0, fix_block, tail)
+        at2 = _load_path(work, src2, 0, fix_block, tail)
         dst = cur_off + x * dp
         fb = (fwd_row * W + x) * dp
         kb = ((ckpt_slot * ndir) * W + x) * dp
@@ -231,7 +239,8 @@ def _columns(r, rs, fresh, x0, x1, mode, source, penalties, gray, ndir, crow, wo
             else:
                 c = vload(crow, cb + o)
                 fsum = inf
-            hi0 = inf if last else _load_path(work, src0 + o + LANES, b + 1, nb, tail)
+            hi0 = inf if last else _load_path(work, src0 + o + LANES, b + 1, fix_block,
+                                                   tail)
             l0 = _path_block(c, lo0, at0, hi0, p1v, base0, sub0)
             vstore(work, dst + o, l0)
             mv0 = vmin(mv0, l0)
@@ -241,13 +250,15 @@ def _columns(r, rs, fresh, x0, x1, mode, source, penalties, gray, ndir, crow, wo
             if ckpt_slot >= 0:
                 vstore(ckpt, kb + o, l0)
             if ndir == 3:
-                hi1 = inf if last else _load_path(work, src1 + o + LANES, b + 1, nb, tail)
+                hi1 = inf if last else _load_path(work, src1 + o + LANES, b + 1, fix_block,
+                                                   tail)
                 l1 = _path_block(c, lo1, at1, hi1, p1v, base1, sub1)
                 vstore(work, dst + W * dp + o, l1)
                 mv1 = vmin(mv1, l1)
                 lo1 = at1
                 at1 = hi1
-                hi2 = inf if last else _load_path(work, src2 + o + LANES, b + 1, nb, tail)
+                hi2 = inf if last else _load_path(work, src2 + o + LANES, b + 1, fix_block,
+                                                   tail)
                 l2 = _path_block(c, lo2, at2, hi2, p1v, base2, sub2)
                 vstore(work, dst + 2 * W * dp + o, l2)
                 mv2 = vmin(mv2, l2)
