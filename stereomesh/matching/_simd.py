@@ -202,21 +202,24 @@ def vfill_outside(typingctx, vec, lo, hi, value):
 
 
 def _in_range(builder, key, lo, hi):
-    """Lane mask of ``lo <= key < hi``; ``lo``, ``hi`` are i64 clamped to the 16-bit range."""
+    """Lane mask of ``lo <= key < hi``; ``lo``, ``hi`` are i64 clamped to the lanes' range."""
     i64 = ir.IntType(64)
+    lane = key.type.element
+    top = (1 << lane.width) - 1
 
     def clamp(x):
         x = builder.select(builder.icmp_signed("<", x, ir.Constant(i64, 0)),
                            ir.Constant(i64, 0), x)
-        return builder.select(builder.icmp_signed(">", x, ir.Constant(i64, 0xFFFF)),
-                              ir.Constant(i64, 0xFFFF), x)
+        return builder.select(builder.icmp_signed(">", x, ir.Constant(i64, top)),
+                              ir.Constant(i64, top), x)
 
     lo_c = clamp(lo)
     hi_c = clamp(hi)
     hi_c = builder.select(builder.icmp_signed("<", hi_c, lo_c), lo_c, hi_c)
-    # lo <= key < hi  <=>  (key - lo) mod 2**16 < hi - lo, unsigned.
-    shifted = builder.sub(key, _splat(builder, builder.trunc(lo_c, _I16)))
-    width = _splat(builder, builder.trunc(builder.sub(hi_c, lo_c), _I16))
+    # lo <= key < hi  <=>  (key - lo) mod 2**bits < hi - lo, unsigned.
+    splat = _splat if lane.width == 16 else _bsplat
+    shifted = builder.sub(key, splat(builder, builder.trunc(lo_c, lane)))
+    width = splat(builder, builder.trunc(builder.sub(hi_c, lo_c), lane))
     return builder.icmp_unsigned("<", shifted, width)
 
 
@@ -397,3 +400,199 @@ vshl = _shift_by_scalar(lambda b, x, n: b.shl(x, n),
                         "Every lane shifted left by ``count`` bits (``0 <= count < 16``).")
 vshr = _shift_by_scalar(lambda b, x, n: b.lshr(x, n),
                         "Every lane shifted right by ``count`` bits, zero-filled (0 to 15).")
+
+
+# --- 8-bit vectors -------------------------------------------------------------
+#
+# Twice the lanes of the 16-bit vectors, for recurrences whose values stay
+# below 256 (the semi-global path costs with small penalties): the same
+# instruction then advances twice the hypotheses. Sums that outgrow a byte are
+# widened into 16-bit vectors with :func:`bwiden_low` and :func:`bwiden_high`.
+
+BYTE_LANES = 2 * LANES
+_I8 = ir.IntType(8)
+_BVEC = ir.VectorType(_I8, BYTE_LANES)
+_BYTE_INDEX = ir.Constant(_BVEC, list(range(BYTE_LANES)))
+
+
+class U8Vector(types.Type):
+    """``BYTE_LANES`` unsigned 8-bit integers held in registers."""
+
+    def __init__(self):
+        super().__init__(name=f"u8x{BYTE_LANES}")
+
+
+u8vec = U8Vector()
+
+
+@register_model(U8Vector)
+class _U8VectorModel(models.PrimitiveModel):
+    def __init__(self, dmm, fe_type):
+        super().__init__(dmm, fe_type, _BVEC)
+
+
+def _bsplat(builder, scalar):
+    vec = builder.insert_element(ir.Constant(_BVEC, ir.Undefined), scalar, ir.Constant(_I32, 0))
+    zeros = ir.Constant(ir.VectorType(_I32, BYTE_LANES), [0] * BYTE_LANES)
+    return builder.shuffle_vector(vec, ir.Constant(_BVEC, ir.Undefined), zeros)
+
+
+@intrinsic
+def bload(typingctx, array, index):
+    """``array.flat[index : index + BYTE_LANES]`` of a uint8 array."""
+    if not isinstance(array, types.Array) or array.dtype != types.uint8:
+        return None
+    sig = u8vec(array, types.intp)
+
+    def codegen(context, builder, signature, args):
+        ptr = _element_pointer(context, builder, signature.args[0], args[0], args[1])
+        return builder.load(builder.bitcast(ptr, _BVEC.as_pointer()), align=1)
+
+    return sig, codegen
+
+
+@intrinsic
+def bstore(typingctx, array, index, vec):
+    """Store ``vec`` at ``array.flat[index : index + BYTE_LANES]`` of a uint8 array."""
+    if not isinstance(array, types.Array) or array.dtype != types.uint8 or vec != u8vec:
+        return None
+    sig = types.void(array, types.intp, u8vec)
+
+    def codegen(context, builder, signature, args):
+        ptr = _element_pointer(context, builder, signature.args[0], args[0], args[1])
+        builder.store(args[2], builder.bitcast(ptr, _BVEC.as_pointer()), align=1)
+        return context.get_dummy_value()
+
+    return sig, codegen
+
+
+@intrinsic
+def bsplat(typingctx, value):
+    """Every lane set to ``value`` (an integer, truncated to 8 bits)."""
+    if not isinstance(value, types.Integer):
+        return None
+    sig = u8vec(value)
+
+    def codegen(context, builder, signature, args):
+        v = args[0]
+        width = signature.args[0].bitwidth
+        v = builder.trunc(v, _I8) if width > 8 else (builder.zext(v, _I8) if width < 8 else v)
+        return _bsplat(builder, v)
+
+    return sig, codegen
+
+
+def _byte_binary(emit, doc):
+    @intrinsic
+    def op(typingctx, a, b):
+        if a != u8vec or b != u8vec:
+            return None
+        sig = u8vec(u8vec, u8vec)
+
+        def codegen(context, builder, signature, args):
+            return emit(builder, *args)
+
+        return sig, codegen
+
+    op.__doc__ = doc
+    return op
+
+
+bsub = _byte_binary(lambda b, x, y: b.sub(x, y), "Lane-wise ``a - b`` modulo 2**8.")
+bmin = _byte_binary(lambda b, x, y: b.select(b.icmp_unsigned("<", x, y), x, y),
+                    "Lane-wise minimum.")
+badds = _byte_binary(
+    lambda b, x, y: _call(b, f"llvm.uadd.sat.v{BYTE_LANES}i8", _BVEC, x, y),
+    "Lane-wise ``a + b`` saturated at 0xFF.",
+)
+
+
+def _byte_shuffle_pair(offset, doc):
+    @intrinsic
+    def op(typingctx, a, b):
+        if a != u8vec or b != u8vec:
+            return None
+        sig = u8vec(u8vec, u8vec)
+
+        def codegen(context, builder, signature, args):
+            mask = ir.Constant(ir.VectorType(_I32, BYTE_LANES),
+                               [offset + i for i in range(BYTE_LANES)])
+            return builder.shuffle_vector(args[0], args[1], mask)
+
+        return sig, codegen
+
+    op.__doc__ = doc
+    return op
+
+
+bshift_in_low = _byte_shuffle_pair(BYTE_LANES - 1,
+                                   "``bshift_in_low(below, cur)``: lane k holds entry k - 1.")
+bshift_in_high = _byte_shuffle_pair(1, "``bshift_in_high(cur, above)``: lane k holds entry k + 1.")
+
+
+@intrinsic
+def bhmin(typingctx, vec):
+    """Smallest lane, as a uint8 scalar."""
+    if vec != u8vec:
+        return None
+    sig = types.uint8(u8vec)
+
+    def codegen(context, builder, signature, args):
+        return _call(builder, f"llvm.vector.reduce.umin.v{BYTE_LANES}i8", _I8, args[0])
+
+    return sig, codegen
+
+
+@intrinsic
+def bfill_outside(typingctx, vec, lo, hi, value):
+    """``vec`` with every lane whose index is not in ``[lo, hi)`` set to ``value``."""
+    if vec != u8vec or not all(isinstance(t, types.Integer) for t in (lo, hi, value)):
+        return None
+    sig = u8vec(u8vec, types.intp, types.intp, value)
+
+    def codegen(context, builder, signature, args):
+        v, lo_, hi_, fill = args
+        fill_v = _bsplat(builder, builder.trunc(fill, _I8) if signature.args[3].bitwidth > 8
+                         else fill)
+        return builder.select(_in_range(builder, _BYTE_INDEX, lo_, hi_), v, fill_v)
+
+    return sig, codegen
+
+
+def _widen(half, doc):
+    @intrinsic
+    def op(typingctx, vec):
+        if vec != u8vec:
+            return None
+        sig = u16vec(u8vec)
+
+        def codegen(context, builder, signature, args):
+            mask = ir.Constant(ir.VectorType(_I32, LANES), [half * LANES + i for i in range(LANES)])
+            part = builder.shuffle_vector(args[0], ir.Constant(_BVEC, ir.Undefined), mask)
+            return builder.zext(part, _VEC)
+
+        return sig, codegen
+
+    op.__doc__ = doc
+    return op
+
+
+bwiden_low = _widen(0, "Lanes ``0 .. LANES - 1`` as a 16-bit vector.")
+bwiden_high = _widen(1, "Lanes ``LANES .. BYTE_LANES - 1`` as a 16-bit vector.")
+
+
+@intrinsic
+def bnarrow(typingctx, low, high):
+    """The 8-bit vector of ``low`` then ``high`` (16-bit vectors), each lane truncated."""
+    if low != u16vec or high != u16vec:
+        return None
+    sig = u8vec(u16vec, u16vec)
+
+    def codegen(context, builder, signature, args):
+        half = ir.VectorType(_I8, LANES)
+        a = builder.trunc(args[0], half)
+        b = builder.trunc(args[1], half)
+        mask = ir.Constant(ir.VectorType(_I32, BYTE_LANES), list(range(BYTE_LANES)))
+        return builder.shuffle_vector(a, b, mask)
+
+    return sig, codegen
