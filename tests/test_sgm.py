@@ -79,29 +79,31 @@ def test_fused_sgm_equals_volume_reference(h, w, d_min, n_disp, paths, cost, blo
         got.unary, np.take_along_axis(vol, labels[..., None], 2)[..., 0].astype(np.float32))
 
 
-def test_lane_split_and_workspace_do_not_change_the_result():
+def test_lane_split_workspace_and_lane_width_do_not_change_the_result():
     # The column split only balances the workers; any split, any number of
-    # lanes and a reused workspace must give the same bits.
+    # lanes, a reused workspace and 8- or 16-bit path arithmetic (with the
+    # padding each needs) must give the same bits.
     left, right = _pair(26, 70, seed=3)
-    d_min, n_disp, dp = -2, 30, 32
-    pads = _sgm_kernels._right_pad(d_min, dp)
+    d_min, n_disp = -2, 30
     cl = _kernels.census_planes_of_image(_kernels.edge_padded(left, 2, 3), 7, 5, 3, 0, 0, False)
-    crev = _kernels.census_planes_of_image(_kernels.edge_padded(right, 2, 3), 7, 5, 3, *pads,
-                                           True)
-    # The planes straight from the image equal the census strings split afterwards.
-    np.testing.assert_array_equal(
-        crev, _kernels.census_planes(census_transform(right), 3, *pads, True))
     ws = Workspace()
     results = []
-    for lanes, block_rows in ((1, 26), (2, 5), (3, 7), (5, 26)):
-        specs = _sgm_kernels.buffer_shapes(26, 70, dp, True, block_rows, True)
-        bounds = [_lane_columns(70, f, lanes) for f in (None, True, False)]
-        out = _sgm_kernels.sgm_solve(
-            cl, crev, np.zeros((1, 1, 1), np.uint8), False, left, d_min, n_disp, dp, 34,
-            34 + 2 * 96 + 1, 8, 96, 8.0, True, block_rows,
-            *_sgm_kernels.cost_packing(34, 96, 34 + 2 * 96 + 1, True), *bounds,
-            *ws.arrays(specs))
-        results.append(out)
+    for byte_paths, dp in ((False, 32), (True, 64)):
+        pads = _sgm_kernels._right_pad(d_min, dp)
+        crev = _kernels.census_planes_of_image(_kernels.edge_padded(right, 2, 3), 7, 5, 3,
+                                               *pads, True)
+        # The planes straight from the image equal the census strings split afterwards.
+        np.testing.assert_array_equal(
+            crev, _kernels.census_planes(census_transform(right), 3, *pads, True))
+        for lanes, block_rows in ((1, 26), (2, 5), (3, 7), (5, 26)):
+            specs = _sgm_kernels.buffer_shapes(26, 70, dp, True, block_rows, True, byte_paths)
+            bounds = [_lane_columns(70, f, lanes) for f in (None, True, False)]
+            out = _sgm_kernels.sgm_solve(
+                cl, crev, np.zeros((1, 1, 1), np.uint8), False, left, d_min, n_disp, dp, 34,
+                34 + 2 * 96 + 1, 8, 96, 8.0, True, block_rows,
+                *_sgm_kernels.cost_packing(34, 96, 34 + 2 * 96 + 1, True), *bounds, byte_paths,
+                *ws.arrays(specs))
+            results.append(out)
     for other in results[1:]:
         for a, b in zip(results[0], other, strict=True):
             np.testing.assert_array_equal(a, b)

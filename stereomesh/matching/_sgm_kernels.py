@@ -1,8 +1,8 @@
 """numba kernels of the fused semi-global matching solver.
 
 The solver never holds a matching-cost volume: a row of costs is computed when
-a pass reaches it, and the only image-sized buffer is the ``(H, W, Dp)`` uint16
-sum of path costs. Two passes over the rows:
+a pass reaches it, and the largest buffer is the ``(block_rows, W, Dp)``
+uint16 forward sums of one block of rows. Two passes over the rows:
 
 * forward (top to bottom): both horizontal paths and the paths arriving from
   the row above (vertical and, with 8 paths, both diagonals); their sum is
@@ -10,8 +10,11 @@ sum of path costs. Two passes over the rows:
 * backward (bottom to top): the paths arriving from the row below are added,
   which leaves the full sum.
 
-A third, row-parallel kernel picks winners for the left and the right image
-from the sum. All arithmetic is on 16-bit vector lanes (:mod:`._simd`).
+Winners for the left and the right image are picked from the sum as rows
+finish. Sums are on 16-bit vector lanes (:mod:`._simd`); the path recurrences
+run on 8-bit lanes, twice as many per instruction, whenever every value they
+meet fits a byte (:func:`byte_lanes_fit`: the default census and penalties),
+and on 16-bit lanes otherwise.
 
 Parallel layout: in the pass over row ``r`` the columns are split into one
 slice per worker ("lane"); each lane computes the cost row and the
@@ -38,7 +41,21 @@ from numba import njit, prange
 
 from stereomesh.matching._kernels import _penalty2, _popcount64, _valid_range
 from stereomesh.matching._simd import (
+    BYTE_LANES,
     LANES,
+    badds,
+    bfill_outside,
+    bhmin,
+    bload,
+    bmin,
+    bnarrow,
+    bshift_in_high,
+    bshift_in_low,
+    bsplat,
+    bstore,
+    bsub,
+    bwiden_high,
+    bwiden_low,
     cycle_counter,
     prefetch,
     vadd,
@@ -124,6 +141,19 @@ def _path_block(cost, below, cur, above, p1v, base, sub):
     """
     near = vadds(vmin(vshift_in_low(below, cur), vshift_in_high(cur, above)), p1v)
     return vsub(vadd(cost, vmin(vmin(cur, near), base)), sub)
+
+
+@njit(cache=True, inline="always")
+def _byte_path_block(cost, below, cur, above, p1v, base, sub):
+    """:func:`_path_block` on 8-bit lanes.
+
+    Valid when the previous minimum plus ``P2`` and every cost stay below 256
+    (:func:`byte_lanes_fit`): then ``min(...) - sub`` never underflows and
+    adding the cost never overflows for real hypotheses; padded ones saturate
+    at 255, above every real value.
+    """
+    near = badds(bmin(bshift_in_low(below, cur), bshift_in_high(cur, above)), p1v)
+    return badds(bsub(bmin(bmin(cur, near), base), sub), cost)
 
 
 @njit(cache=True, inline="always")
@@ -279,6 +309,143 @@ def _columns(r, rs, fresh, x0, x1, mode, source, penalties, gray, ndir, crow, wo
         if ndir == 3:
             pmin[pcur, 1, x] = vhmin(mv1)
             pmin[pcur, 2, x] = vhmin(mv2)
+        if ckpt_slot >= 0:
+            for j in range(ndir):
+                ckpt_min[ckpt_slot, j, x] = pmin[pcur, j, x]
+
+
+@njit(cache=True, inline="always")
+def _columns_bytes(r, rs, fresh, x0, x1, mode, source, penalties, gray, ndir, crow8, work,
+                   prev_off, cur_off, pmin, pprev, pcur, part, fwd, fwd_row, ckpt, ckpt_min,
+                   ckpt_slot, packing):
+    """:func:`_columns` with the path recurrences on 8-bit lanes.
+
+    ``crow8`` holds the cost rows in bytes, ``work`` and ``ckpt`` the path
+    values (uint8); sums are widened into 16-bit lanes. ``dp`` is a multiple
+    of ``BYTE_LANES``; the caller checks :func:`byte_lanes_fit`.
+    """
+    cl, crev, vol, use_volume, d_min, n_disp, invalid, pad_cost = source
+    p1, p2, g_scale = penalties
+    cost_bits, fwd_pad = packing
+    unpack = mode == 2 and cost_bits > 0
+    W = gray.shape[1]
+    dp = crow8.shape[0] // (2 * W)
+    nb = dp // BYTE_LANES
+    tail = n_disp - (nb - 1) * BYTE_LANES
+    p1v = bsplat(p1)
+    inf = bsplat(255)
+    inf16 = vsplat(np.uint16(INF16))
+    cost_mask = vsplat(np.uint16((1 << cost_bits) - 1))
+    if not unpack:
+        _cost_row(crow8, r, x0, x1, cl, crev, vol, use_volume, d_min, n_disp, dp, invalid,
+                  pad_cost)
+    for x in range(x0, x1):
+        cb = ((r & 1) * W + x) * dp
+        g = gray[r, x]
+        src0 = 0
+        m0 = 0
+        pen0 = 0
+        src1 = 0
+        m1 = 0
+        pen1 = 0
+        src2 = 0
+        m2 = 0
+        pen2 = 0
+        if not fresh:
+            src0 = prev_off + x * dp
+            m0 = np.int64(pmin[pprev, 0, x])
+            pen0 = _penalty2(p1, p2, g_scale, g, gray[rs, x])
+            if ndir == 3:
+                if x >= 1:
+                    src1 = prev_off + (W + x - 1) * dp
+                    m1 = np.int64(pmin[pprev, 1, x - 1])
+                    pen1 = _penalty2(p1, p2, g_scale, g, gray[rs, x - 1])
+                if x + 1 < W:
+                    src2 = prev_off + (2 * W + x + 1) * dp
+                    m2 = np.int64(pmin[pprev, 2, x + 1])
+                    pen2 = _penalty2(p1, p2, g_scale, g, gray[rs, x + 1])
+        base0 = bsplat(m0 + pen0)
+        base1 = bsplat(m1 + pen1)
+        base2 = bsplat(m2 + pen2)
+        sub0 = bsplat(m0)
+        sub1 = bsplat(m1)
+        sub2 = bsplat(m2)
+        mv0 = inf
+        mv1 = inf
+        mv2 = inf
+        lo0 = inf
+        lo1 = inf
+        lo2 = inf
+        at0 = bload(work, src0)
+        at1 = bload(work, src1)
+        at2 = bload(work, src2)
+        dst = cur_off + x * dp
+        fb = (fwd_row * W + x) * dp
+        kb = ((ckpt_slot * ndir) * W + x) * dp
+        for b in range(nb):
+            o = b * BYTE_LANES
+            last = b + 1 == nb
+            if unpack:
+                packed_low = vload(fwd, fb + o)
+                packed_high = vload(fwd, fb + o + LANES)
+                # A block spans two cache lines of forward sums: ask for both.
+                prefetch(fwd, fb + o + PREFETCH_AHEAD * dp)
+                prefetch(fwd, fb + o + LANES + PREFETCH_AHEAD * dp)
+                c = bnarrow(vand(packed_low, cost_mask), vand(packed_high, cost_mask))
+                f_low = vshr(packed_low, cost_bits)
+                f_high = vshr(packed_high, cost_bits)
+                if last and tail < BYTE_LANES:
+                    # Padded hypotheses were not packed faithfully (see sgm_solve).
+                    c = bfill_outside(c, 0, tail, pad_cost)
+                    f_low = vfill_outside(f_low, 0, tail, fwd_pad)
+                    f_high = vfill_outside(f_high, 0, tail - LANES, fwd_pad)
+            else:
+                c = bload(crow8, cb + o)
+                f_low = inf16
+                f_high = inf16
+            hi0 = inf if last else bload(work, src0 + o + BYTE_LANES)
+            l0 = _byte_path_block(c, lo0, at0, hi0, p1v, base0, sub0)
+            bstore(work, dst + o, l0)
+            mv0 = bmin(mv0, l0)
+            lo0 = at0
+            at0 = hi0
+            acc_low = bwiden_low(l0)
+            acc_high = bwiden_high(l0)
+            if ckpt_slot >= 0:
+                bstore(ckpt, kb + o, l0)
+            if ndir == 3:
+                hi1 = inf if last else bload(work, src1 + o + BYTE_LANES)
+                l1 = _byte_path_block(c, lo1, at1, hi1, p1v, base1, sub1)
+                bstore(work, dst + W * dp + o, l1)
+                mv1 = bmin(mv1, l1)
+                lo1 = at1
+                at1 = hi1
+                hi2 = inf if last else bload(work, src2 + o + BYTE_LANES)
+                l2 = _byte_path_block(c, lo2, at2, hi2, p1v, base2, sub2)
+                bstore(work, dst + 2 * W * dp + o, l2)
+                mv2 = bmin(mv2, l2)
+                lo2 = at2
+                at2 = hi2
+                acc_low = vadd(acc_low, vadd(bwiden_low(l1), bwiden_low(l2)))
+                acc_high = vadd(acc_high, vadd(bwiden_high(l1), bwiden_high(l2)))
+                if ckpt_slot >= 0:
+                    bstore(ckpt, kb + W * dp + o, l1)
+                    bstore(ckpt, kb + 2 * W * dp + o, l2)
+            if unpack:
+                acc_low = vadd(acc_low, f_low)
+                acc_high = vadd(acc_high, f_high)
+            elif mode == 2:
+                acc_low = vadd(acc_low, vload(fwd, fb + o))
+                acc_high = vadd(acc_high, vload(fwd, fb + o + LANES))
+                prefetch(fwd, fb + o + PREFETCH_AHEAD * dp)
+                prefetch(fwd, fb + o + LANES + PREFETCH_AHEAD * dp)
+            if mode >= 1:
+                vstore(part, cb + o, acc_low)
+                vstore(part, cb + o + LANES, acc_high)
+        pmin[pcur, 0, x] = bhmin(mv0)
+        if ndir == 3:
+            pmin[pcur, 1, x] = bhmin(mv1)
+            pmin[pcur, 2, x] = bhmin(mv2)
         if ckpt_slot >= 0:
             for j in range(ndir):
                 ckpt_min[ckpt_slot, j, x] = pmin[pcur, j, x]
@@ -454,6 +621,104 @@ def _horizontal(r, gray, p1, p2, g_scale, crow, part, hbuf, out, out_row, cost_b
         bm = np.int64(vhmin(b_mv))
         f_prev, f_cur = f_cur, f_prev
         b_prev, b_cur = b_cur, b_prev
+
+
+@njit(cache=True, inline="always")
+def _horizontal_bytes(r, gray, p1, p2, g_scale, crow8, part, hbuf8, out, out_row, cost_bits):
+    """:func:`_horizontal` with the path recurrences on 8-bit lanes (``hbuf8``: uint8)."""
+    W = gray.shape[1]
+    dp = crow8.shape[0] // (2 * W)
+    nb = dp // BYTE_LANES
+    p1v = bsplat(p1)
+    inf = bsplat(255)
+    cost_mask = vsplat(np.uint16((1 << cost_bits) - 1))
+    f_prev, f_cur = dp, 2 * dp
+    b_prev, b_cur = 3 * dp, 4 * dp
+    fm = 0
+    bm = 0
+    for i in range(W):
+        xf = i
+        xb = W - 1 - i
+        f_first = 2 * i <= W - 1
+        b_first = 2 * i < W - 1
+        cf = ((r & 1) * W + xf) * dp
+        cb = ((r & 1) * W + xb) * dp
+        of = (out_row * W + xf) * dp
+        ob = (out_row * W + xb) * dp
+        if i == 0:
+            f_src = 0
+            b_src = 0
+            f_pen = 0
+            b_pen = 0
+        else:
+            f_src = f_prev
+            b_src = b_prev
+            f_pen = _penalty2(p1, p2, g_scale, gray[r, xf], gray[r, xf - 1])
+            b_pen = _penalty2(p1, p2, g_scale, gray[r, xb], gray[r, xb + 1])
+        f_base = bsplat(fm + f_pen)
+        f_sub = bsplat(fm)
+        b_base = bsplat(bm + b_pen)
+        b_sub = bsplat(bm)
+        f_mv = inf
+        b_mv = inf
+        f_lo = inf
+        b_lo = inf
+        f_at = bload(hbuf8, f_src)
+        b_at = bload(hbuf8, b_src)
+        for b in range(nb):
+            o = b * BYTE_LANES
+            last = b + 1 == nb
+            f_hi = inf if last else bload(hbuf8, f_src + o + BYTE_LANES)
+            b_hi = inf if last else bload(hbuf8, b_src + o + BYTE_LANES)
+            f_c = bload(crow8, cf + o)
+            b_c = bload(crow8, cb + o)
+            f_l = _byte_path_block(f_c, f_lo, f_at, f_hi, p1v, f_base, f_sub)
+            b_l = _byte_path_block(b_c, b_lo, b_at, b_hi, p1v, b_base, b_sub)
+            bstore(hbuf8, f_cur + o, f_l)
+            bstore(hbuf8, b_cur + o, b_l)
+            f_mv = bmin(f_mv, f_l)
+            b_mv = bmin(b_mv, b_l)
+            f_lo = f_at
+            f_at = f_hi
+            b_lo = b_at
+            b_at = b_hi
+            for h in range(2):
+                oh = o + h * LANES
+                f_add = bwiden_low(f_l) if h == 0 else bwiden_high(f_l)
+                b_add = bwiden_low(b_l) if h == 0 else bwiden_high(b_l)
+                f_sum = vadd(vload(part, cf + oh), f_add)
+                if f_first:
+                    vstore(part, cf + oh, f_sum)
+                else:
+                    f_cost = bwiden_low(f_c) if h == 0 else bwiden_high(f_c)
+                    vstream(out, of + oh, vadd(vshl(f_sum, cost_bits), vand(f_cost, cost_mask)))
+                b_sum = vadd(vload(part, cb + oh), b_add)
+                if b_first:
+                    vstore(part, cb + oh, b_sum)
+                else:
+                    b_cost = bwiden_low(b_c) if h == 0 else bwiden_high(b_c)
+                    vstream(out, ob + oh, vadd(vshl(b_sum, cost_bits), vand(b_cost, cost_mask)))
+        fm = np.int64(bhmin(f_mv))
+        bm = np.int64(bhmin(b_mv))
+        f_prev, f_cur = f_cur, f_prev
+        b_prev, b_cur = b_cur, b_prev
+
+
+def byte_lanes_fit(max_cost, p2, pad_cost, narrow_paths):
+    """Whether the path recurrences may run on 8-bit lanes (see :func:`_byte_path_block`).
+
+    Path values stay at most ``max_cost + P2`` and the step term at most
+    ``P2`` above the previous minimum, so everything below 256 needs
+    ``max_cost + 2 P2 < 256``; the padded hypotheses' cost must fit a byte.
+
+    Examples
+    --------
+    >>> byte_lanes_fit(34, 96, 34 + 2 * 96 + 1, True)
+    True
+    >>> byte_lanes_fit(34, 120, 34 + 2 * 120 + 1, True)
+    False
+    """
+    return bool(narrow_paths and max_cost + 2 * p2 <= 254 and pad_cost <= 255)
 
 
 WINDOW_VECTORS = 8  # hypotheses up to 8 * LANES: right winners from a register window
@@ -705,28 +970,32 @@ def cost_packing(max_cost, p2, pad_cost, diagonals):
     return bits, fwd_pad
 
 
-def buffer_shapes(H, W, dp, diagonals, block_rows, narrow_paths):
+def buffer_shapes(H, W, dp, diagonals, block_rows, narrow_paths, byte_paths=False):
     """``(shape, dtype)`` of the work buffers :func:`sgm_solve` takes, in its argument order.
 
     With ``narrow_paths`` the path values (and their checkpoints) are kept in
     uint8, which halves the memory they stream through; callers ensure that
-    every real path value fits (matching cost + P2 <= 255).
+    every real path value fits (matching cost + P2 <= 255). With
+    ``byte_paths`` (see :func:`byte_lanes_fit`) the cost rows are bytes too.
     """
     ndir = 3 if diagonals else 1
     n_ckpt = max((H + block_rows - 1) // block_rows - 1, 1)
     path = np.uint8 if narrow_paths else np.uint16
     work = (dp + 2 * ndir * W * dp,)
     row2 = (2 * W * dp,)
+    cost16 = (1,) if byte_paths else row2
+    cost8 = row2 if byte_paths else (1,)
     return [(work, path), (work, path), ((n_ckpt, ndir, W, dp), path),
             ((n_ckpt, ndir, W), np.uint16), ((block_rows, W, dp), np.uint16),
-            ((2, W, dp), np.uint16), (row2, np.uint16), (row2, np.uint16), (row2, np.uint16)]
+            ((2, W, dp), np.uint16), (cost16, np.uint16), (cost16, np.uint16),
+            (cost8, np.uint8), (cost8, np.uint8), (row2, np.uint16)]
 
 
 @njit(cache=True, parallel=True)
 def sgm_solve(cl, crev, vol, use_volume, gray, d_min, n_disp, dp, invalid, pad_cost, p1, p2,
               g_scale, diagonals, block_rows, cost_bits, fwd_pad, bounds_even, bounds_down,
-              bounds_up, work_down, work_up, ckpt, ckpt_min, fwd, final, crow_down, crow_up,
-              part_down):
+              bounds_up, byte_paths, work_down, work_up, ckpt, ckpt_min, fwd, final, crow_down,
+              crow_up, crow8_down, crow8_up, part_down):
     """Semi-global matching with 4 or 8 paths and the winners of both images.
 
     Costs come from census strings in 16-bit planes (``cl`` and ``crev``, see
@@ -767,6 +1036,9 @@ def sgm_solve(cl, crev, vol, use_volume, gray, d_min, n_disp, dp, invalid, pad_c
     hbuf_memory = np.zeros(5 * dp + LANES, np.uint16)
     start = ((-hbuf_memory.ctypes.data) % (2 * LANES)) // 2
     hbuf = hbuf_memory[start : start + 5 * dp]
+    hbuf8_memory = np.zeros(5 * dp + BYTE_LANES, np.uint8)
+    start8 = (-hbuf8_memory.ctypes.data) % BYTE_LANES
+    hbuf8 = hbuf8_memory[start8 : start8 + 5 * dp]
     final_flat = final.reshape(-1)
     rmin = np.empty(W + dp, np.uint16)
     rarg = np.empty(W + dp, np.uint16)
@@ -798,6 +1070,7 @@ def sgm_solve(cl, crev, vol, use_volume, gray, d_min, n_disp, dp, invalid, pad_c
         work = work_up if up else work_down
         pmin = pmin_up if up else pmin_down
         crow = crow_up if up else crow_down
+        crow8 = crow8_up if up else crow8_down
         part = final_flat if up else part_down
         parity = st[_PARITY]
         for j in range(lanes + 1):
@@ -815,13 +1088,25 @@ def sgm_solve(cl, crev, vol, use_volume, gray, d_min, n_disp, dp, invalid, pad_c
         for t in prange(lanes):
             start_cycles = cycle_counter()
             if st[_COLS] >= 0:
-                _columns(st[_COLS], st[_FROM], st[_FRESH] == 1, bounds[t], bounds[t + 1],
-                         st[_MODE], source, penalties, gray, ndir, crow, work,
-                         dp + parity * half, dp + (1 - parity) * half, pmin, parity, 1 - parity,
-                         part, fwd, st[_FWD_ROW], ckpt, ckpt_min, st[_SAVE], packing)
+                if byte_paths:
+                    _columns_bytes(st[_COLS], st[_FROM], st[_FRESH] == 1, bounds[t],
+                                   bounds[t + 1], st[_MODE], source, penalties, gray, ndir,
+                                   crow8, work, dp + parity * half, dp + (1 - parity) * half,
+                                   pmin, parity, 1 - parity, part, fwd, st[_FWD_ROW], ckpt,
+                                   ckpt_min, st[_SAVE], packing)
+                else:
+                    _columns(st[_COLS], st[_FROM], st[_FRESH] == 1, bounds[t], bounds[t + 1],
+                             st[_MODE], source, penalties, gray, ndir, crow, work,
+                             dp + parity * half, dp + (1 - parity) * half, pmin, parity,
+                             1 - parity, part, fwd, st[_FWD_ROW], ckpt, ckpt_min, st[_SAVE],
+                             packing)
             if t == 0 and st[_HORIZ] >= 0:
-                _horizontal(st[_HORIZ], gray, p1, p2, g_scale, crow, part, hbuf, fwd,
-                            st[_HORIZ_OUT], cost_bits)
+                if byte_paths:
+                    _horizontal_bytes(st[_HORIZ], gray, p1, p2, g_scale, crow8, part, hbuf8,
+                                      fwd, st[_HORIZ_OUT], cost_bits)
+                else:
+                    _horizontal(st[_HORIZ], gray, p1, p2, g_scale, crow, part, hbuf, fwd,
+                                st[_HORIZ_OUT], cost_bits)
             if t == right_lane and st[_SELECT] >= 0:
                 _select_row(st[_SELECT], final, d_min, n_disp, best_k, c_best, c_second,
                             c_minus, c_plus)

@@ -166,7 +166,6 @@ def semi_global_matching(
     if n_disp < 1:
         raise ValueError(f"n_disp must be at least 1, got {n_disp}")
     h, w = left.shape
-    dp = -(-n_disp // LANES) * LANES
     if block_rows is None:
         block_rows = best_block_rows(h, paths)
     block_rows = int(min(max(1, block_rows), h))
@@ -176,18 +175,11 @@ def semi_global_matching(
         if ww % 2 == 0 or wh % 2 == 0 or invalid > MAX_CENSUS_BITS:
             raise ValueError(f"census window must have odd sides and at most "
                              f"{MAX_CENSUS_BITS} comparisons, got {window}")
-        planes = -(-invalid // 16)
-        pads = _sgm_kernels._right_pad(d_min, dp)
-        left_planes = _kernels.census_planes_of_image(
-            _kernels.edge_padded(left, wh // 2, ww // 2), ww, wh, planes, 0, 0, False)
-        right_planes = _kernels.census_planes_of_image(
-            _kernels.edge_padded(right, wh // 2, ww // 2), ww, wh, planes, *pads, True)
         volume = np.zeros((1, 1, 1), np.uint8)
         max_cost = invalid
     else:
         volume = np.ascontiguousarray(COST_FUNCTIONS[cost](left, right, d_min, n_disp,
                                                            window=window))
-        left_planes = right_planes = np.zeros((1, 1, 1), np.uint16)
         invalid = 0
         max_cost = int(volume.max()) if volume.size else 0
     # Larger than any path cost can reach by more than P2: padded hypotheses stay inert.
@@ -195,15 +187,27 @@ def semi_global_matching(
     # Path values never exceed the largest cost plus P2 (the step term is at
     # most P2 above the previous minimum, which is subtracted).
     narrow = max_cost + p2 <= 255
+    byte_paths = _sgm_kernels.byte_lanes_fit(max_cost, p2, pad_cost, narrow)
+    lanes = 2 * LANES if byte_paths else LANES
+    dp = -(-n_disp // lanes) * lanes
+    if cost == "census":
+        planes = -(-invalid // 16)
+        pads = _sgm_kernels._right_pad(d_min, dp)
+        left_planes = _kernels.census_planes_of_image(
+            _kernels.edge_padded(left, wh // 2, ww // 2), ww, wh, planes, 0, 0, False)
+        right_planes = _kernels.census_planes_of_image(
+            _kernels.edge_padded(right, wh // 2, ww // 2), ww, wh, planes, *pads, True)
+    else:
+        left_planes = right_planes = np.zeros((1, 1, 1), np.uint16)
     # Costs travel in the low bits of the stored forward sums when they fit.
     packing = _sgm_kernels.cost_packing(max_cost, p2, pad_cost, paths == 8)
-    shapes = _sgm_kernels.buffer_shapes(h, w, dp, paths == 8, block_rows, narrow)
+    shapes = _sgm_kernels.buffer_shapes(h, w, dp, paths == 8, block_rows, narrow, byte_paths)
     buffers = (workspace or Workspace()).arrays(shapes)
     best_k, c1, c2, cm, cp, best_right = _sgm_kernels.sgm_solve(
         left_planes, right_planes, volume, cost != "census", left, int(d_min), int(n_disp), dp,
         int(invalid), int(pad_cost), int(p1), int(p2), float(p2_gradient_scale), paths == 8,
         block_rows, *packing, _lane_columns(w, None), _lane_columns(w, True),
-        _lane_columns(w, False), *buffers,
+        _lane_columns(w, False), byte_paths, *buffers,
     )
     labels = np.maximum(best_k, 0)
     if cost == "census":
@@ -275,7 +279,7 @@ def memory_bytes(height: int, width: int, n_disp: int, *, paths: int = 8,
     from stereomesh.matching._sgm_kernels import buffer_shapes
     from stereomesh.matching._simd import LANES
 
-    dp = -(-n_disp // LANES) * LANES
+    dp = -(-n_disp // (2 * LANES)) * 2 * LANES  # the wider padding of byte lanes, at most
     k = best_block_rows(height, paths) if block_rows is None else min(block_rows, height)
     work = sum(int(np.prod(shape)) * np.dtype(dtype).itemsize
                for shape, dtype in buffer_shapes(height, width, dp, paths == 8, k, True))
