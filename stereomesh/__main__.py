@@ -1,3 +1,3 @@
-from stereomesh.cli import main
+from stereomesh.cli import entry
 
-raise SystemExit(main())
+raise SystemExit(entry())

@@ -317,7 +317,8 @@ def _solve(gl, gr, d_min, n_disp, params, workspace=None):
 
         h, w = gl.shape
         block_rows = plan_block_rows(h, w, n_disp, params.memory_budget_mb * 2**20,
-                                     paths=params.paths, cost=params.cost)
+                                     paths=params.paths, cost=params.cost,
+                                     fresh=workspace is None or workspace.nbytes == 0)
         return semi_global_matching(
             gl, gr, d_min, n_disp, cost=params.cost,
             window=(params.census_width, params.census_height), p1=params.p1, p2=params.p2,
