@@ -227,11 +227,12 @@ def speed_table(folder, rounds=7, with_bp=True):
               f"ours / it: median {np.median(ratios[mode]):.2f}, best {min(ratios[mode]):.2f}")
     if with_bp:
         bp = DisparityParams(method="bp", disp_range=f"{lo}:{hi}")
-        compute_disparity(left, right, bp)
+        bp_workspace = Workspace()
+        compute_disparity(left, right, bp, workspace=bp_workspace)
         bp_ratio = []
         for _ in range(3):
             t = time.perf_counter()
-            compute_disparity(left, right, bp)
+            compute_disparity(left, right, bp, workspace=bp_workspace)
             t_bp = time.perf_counter() - t
             t = time.perf_counter()
             ours()

@@ -266,13 +266,19 @@ def _row_costs(src, l, e, y, x0, x1, offs, full, out, row_base, tmp):
 
 
 @njit(cache=True, parallel=True)
-def full_level_data(src, l, e, hl, wl, nv):
-    """Scaled data of every hypothesis at level ``l``: (hl, wl, nv·LANES) uint16."""
-    data = np.empty((hl, wl, nv * LANES), np.uint16)
+def fill_full_level_data(src, l, e, hl, wl, nv, data):
+    """:func:`full_level_data` into ``data`` (for reused memory)."""
     offs = np.zeros((1, 2), np.int32)
     for y in prange(hl):
         tmp = np.empty(LANES, np.uint16)
         _row_costs(src, l, e, y, 0, wl, offs, True, data, y * wl * nv * LANES, tmp)
+
+
+@njit(cache=True)
+def full_level_data(src, l, e, hl, wl, nv):
+    """Scaled data of every hypothesis at level ``l``: (hl, wl, nv·LANES) uint16."""
+    data = np.empty((hl, wl, nv * LANES), np.uint16)
+    fill_full_level_data(src, l, e, hl, wl, nv, data)
     return data
 
 
@@ -437,15 +443,21 @@ def _half_row(y, colour, x0, x1, hl, wl, sm, s0, sp, data, off, msg, lab, pw, tr
 
 
 @njit(cache=True, parallel=True)
+def fill_level(src, l, e, hl, wl, dp, parent, pw, data, off, msg, lab):
+    """:func:`init_level` into the given arrays (for reused memory)."""
+    for y in prange(hl):
+        tmp = np.empty(LANES, np.uint16)
+        _init_row(y, y, 0, wl, hl, wl, src, l, e, dp, parent, pw, data, off, msg, lab, tmp)
+
+
+@njit(cache=True)
 def init_level(src, l, e, hl, wl, dp, parent, pw):
     """Windows, data and first messages of a whole windowed level."""
     data = np.empty((hl, wl, 2, LANES), np.uint16)
     off = np.empty((hl, wl, 2), np.int32)
     msg = np.empty((hl, 4, wl, 2, LANES), np.uint8)
     lab = np.empty((hl, wl), np.int32)
-    for y in prange(hl):
-        tmp = np.empty(LANES, np.uint16)
-        _init_row(y, y, 0, wl, hl, wl, src, l, e, dp, parent, pw, data, off, msg, lab, tmp)
+    fill_level(src, l, e, hl, wl, dp, parent, pw, data, off, msg, lab)
     return data, off, msg, lab
 
 

@@ -236,23 +236,42 @@ def level_pairwise(plan_: Plan, level: int) -> tuple:
     return (1, min(5, int(reach).bit_length()), w_l, cap_l)
 
 
-def _pyramid(src, plan_, iterations, tolerance, stream, offset):
+def _level_specs(plan_, stream):
+    """``(shape, dtype)`` of every level's arrays, coarsest first (see :func:`_pyramid`)."""
+    top = plan_.levels - 1
+    hl, wl = plan_.shapes[top]
+    specs = [((hl, wl, plan_.dp), np.uint16), ((hl, 4, wl, plan_.dp), np.uint8),
+             ((hl, wl), np.int32)]
+    for level in range(top - 1, 0 if stream else -1, -1):
+        hl, wl = plan_.shapes[level]
+        specs += [((hl, wl, 2, _LANES), np.uint16), ((hl, wl, 2), np.int32),
+                  ((hl, 4, wl, 2, _LANES), np.uint8), ((hl, wl), np.int32)]
+    return specs
+
+
+def _pyramid(src, plan_, iterations, tolerance, stream, offset, workspace=None):
     """Solve every level; returns the finest level's result and per-level figures.
 
     The result is ``("streamed", winners)``, ``("stored", (data, off, msg))`` for
     a windowed finest level held in memory, or ``("full", (data, msg))`` when
-    the finest level is the one holding every hypothesis.
+    the finest level is the one holding every hypothesis. The levels' arrays
+    live in ``workspace`` (a :class:`~stereomesh.matching.sgm.Workspace`),
+    whose memory a caller solving many pairs reuses.
     """
     from stereomesh.matching import _bp_kernels as K
+    from stereomesh.matching.sgm import Workspace
 
     e, dp = plan_.e, plan_.dp
     top = plan_.levels - 1
     hl, wl = plan_.shapes[top]
     nv = dp // _LANES
     pw = level_pairwise(plan_, top)
-    data = K.full_level_data(src, top, e, hl, wl, nv)
-    msg = np.zeros((hl, 4, wl, dp), np.uint8)
-    lab = np.full((hl, wl), -1, np.int32)
+    arrays = (workspace or Workspace()).arrays(_level_specs(plan_, stream))
+    data, msg, lab = arrays[:3]
+    level_arrays = arrays[3:]
+    K.fill_full_level_data(src, top, e, hl, wl, nv, data)
+    msg[...] = 0
+    lab[...] = -1
     run, changed = K.iterate_full_level(data, msg, lab, pw, iterations, tolerance)
     figures = [{"level": top, "iterations": run, "changed": changed}]
     if top == 0:
@@ -271,7 +290,9 @@ def _pyramid(src, plan_, iterations, tolerance, stream, offset):
             changed = float(counts.sum() / (hl * wl)) if iterations > 1 else 1.0
             figures.append({"level": 0, "iterations": int(iterations), "changed": changed})
             return ("streamed", out[:5]), figures
-        data, off, msg, lab = K.init_level(src, level, e, hl, wl, dp, parent, pw)
+        data, off, msg, lab = level_arrays[:4]
+        level_arrays = level_arrays[4:]
+        K.fill_level(src, level, e, hl, wl, dp, parent, pw, data, off, msg, lab)
         run, changed = K.iterate_level(data, off, msg, lab, pw, iterations, tolerance)
         figures.append({"level": level, "iterations": run, "changed": changed})
         parent = (K.level_labels(data, off, msg), off, msg, False, pw[2])
@@ -377,11 +398,11 @@ def belief_propagation(
     return (beliefs, info) if return_info else beliefs
 
 
-def _winners(src, plan_, d_min, n_disp, iterations, tolerance, stream, offset):
+def _winners(src, plan_, d_min, n_disp, iterations, tolerance, stream, offset, workspace=None):
     """Left winners ``(best_k, c_best, c_second, c_minus, c_plus)`` of one solve."""
     from stereomesh.matching import _kernels
 
-    result, figures = _pyramid(src, plan_, iterations, tolerance, stream, offset)
+    result, figures = _pyramid(src, plan_, iterations, tolerance, stream, offset, workspace)
     if result[0] == "streamed":
         return result[1], figures
     # The finest level in memory: the same rules through the dense beliefs.
@@ -411,6 +432,7 @@ def belief_propagation_matching(
     stream: bool = True,
     offset: float | None = None,
     return_info: bool = False,
+    workspace=None,
 ):
     """Belief-propagation disparity of a rectified pair, straight to the winners.
 
@@ -444,6 +466,9 @@ def belief_propagation_matching(
         default ``CONFIDENCE_OFFSET`` truncation costs (see the module notes).
     return_info : bool
         Also return the solver's figures.
+    workspace : stereomesh.matching.sgm.Workspace, optional
+        Memory for the levels, kept for the next call (fresh memory costs a
+        page fault per page; a caller solving many pairs passes one).
 
     Returns
     -------
@@ -493,9 +518,14 @@ def belief_propagation_matching(
     plan_ = plan(h, w, n_disp, pairwise, levels=levels, max_cost=max_cost)
     if offset is None:
         offset = CONFIDENCE_OFFSET * _truncation_cost(pairwise)
+    if workspace is None:
+        from stereomesh.matching.sgm import Workspace
+
+        workspace = Workspace()  # shared by both solves
     (best_k, c1, c2, cm, cp), figures = _winners(src, plan_, d_min, n_disp, iterations,
-                                                 tolerance, stream, offset)
-    right_k = _winners(src_r, plan_, d_min, n_disp, iterations, tolerance, stream, offset)[0][0]
+                                                 tolerance, stream, offset, workspace)
+    right_k = _winners(src_r, plan_, d_min, n_disp, iterations, tolerance, stream, offset,
+                       workspace)[0][0]
     best_right = np.ascontiguousarray(right_k[:, ::-1])
     labels = np.maximum(best_k, 0)
     if cost == "census":

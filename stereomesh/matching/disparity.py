@@ -104,7 +104,8 @@ def compute_disparity(
     progress : callable, optional
         Called as ``progress(step_name, fraction_done)``.
     workspace : stereomesh.matching.sgm.Workspace, optional
-        Work memory of semi-global matching to reuse across calls (many pairs).
+        Work memory of semi-global matching or belief propagation to reuse
+        across calls (many pairs).
 
     Returns
     -------
@@ -148,7 +149,7 @@ def compute_disparity(
 
     strips = row_strips(h, w, n_disp, params)
     figures["strips"] = len(strips)
-    if params.method == "sgm" and workspace is None:
+    if params.method in ("sgm", "bp") and workspace is None:
         from stereomesh.matching.sgm import Workspace
 
         workspace = Workspace()  # shared by the strips
@@ -333,7 +334,7 @@ def _solve(gl, gr, d_min, n_disp, params, workspace=None):
             gl, gr, d_min, n_disp, pairwise=pairwise_term(params), cost=params.cost,
             window=(params.census_width, params.census_height),
             iterations=params.bp_iterations, levels=params.bp_levels,
-            tolerance=params.bp_tolerance, return_info=True,
+            tolerance=params.bp_tolerance, return_info=True, workspace=workspace,
         )
     from stereomesh.matching.winners import select_winners
 
