@@ -101,7 +101,7 @@ def test_lane_split_workspace_and_lane_width_do_not_change_the_result():
             out = _sgm_kernels.sgm_solve(
                 cl, crev, np.zeros((1, 1, 1), np.uint8), False, left, d_min, n_disp, dp, 34,
                 34 + 2 * 96 + 1, 8, 96, 8.0, True, block_rows,
-                *_sgm_kernels.cost_packing(34, 96, 34 + 2 * 96 + 1, True), *bounds, byte_paths,
+                *_sgm_kernels.cost_packing(34, 96, 34 + 2 * 96 + 1, True), *bounds,
                 *ws.arrays(specs))
             results.append(out)
     for other in results[1:]:

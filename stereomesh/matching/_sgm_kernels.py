@@ -37,7 +37,8 @@ and store-to-load forwarding works on the horizontal path.
 from __future__ import annotations
 
 import numpy as np
-from numba import njit, prange
+from numba import njit, prange, types
+from numba.extending import overload
 
 from stereomesh.matching._kernels import _penalty2, _popcount64, _valid_range
 from stereomesh.matching._simd import (
@@ -625,7 +626,7 @@ def _horizontal(r, gray, p1, p2, g_scale, crow, part, hbuf, out, out_row, cost_b
 
 @njit(cache=True, inline="always")
 def _horizontal_bytes(r, gray, p1, p2, g_scale, crow8, part, hbuf8, out, out_row, cost_bits):
-    """:func:`_horizontal` with the path recurrences on 8-bit lanes (``hbuf8``: uint8)."""
+    """:func:`_horizontal` on 8-bit lanes (``crow8`` and ``hbuf8`` hold bytes)."""
     W = gray.shape[1]
     dp = crow8.shape[0] // (2 * W)
     nb = dp // BYTE_LANES
@@ -702,6 +703,46 @@ def _horizontal_bytes(r, gray, p1, p2, g_scale, crow8, part, hbuf8, out, out_row
         bm = np.int64(bhmin(b_mv))
         f_prev, f_cur = f_cur, f_prev
         b_prev, b_cur = b_cur, b_prev
+
+
+def _row_columns(r, rs, fresh, x0, x1, mode, source, penalties, gray, ndir, crow, work,
+                 prev_off, cur_off, pmin, pprev, pcur, part, fwd, fwd_row, ckpt, ckpt_min,
+                 ckpt_slot, packing):
+    """:func:`_columns_bytes` when the cost rows ``crow`` are bytes, else :func:`_columns`.
+
+    Chosen when numba types the call, so each specialisation of
+    :func:`sgm_solve` compiles one of them.
+    """
+
+
+@overload(_row_columns, inline="always")
+def _row_columns_typed(r, rs, fresh, x0, x1, mode, source, penalties, gray, ndir, crow, work,
+                       prev_off, cur_off, pmin, pprev, pcur, part, fwd, fwd_row, ckpt, ckpt_min,
+                       ckpt_slot, packing):
+    kernel = _columns_bytes if crow.dtype == types.uint8 else _columns
+
+    def impl(r, rs, fresh, x0, x1, mode, source, penalties, gray, ndir, crow, work, prev_off,
+             cur_off, pmin, pprev, pcur, part, fwd, fwd_row, ckpt, ckpt_min, ckpt_slot,
+             packing):
+        kernel(r, rs, fresh, x0, x1, mode, source, penalties, gray, ndir, crow, work, prev_off,
+               cur_off, pmin, pprev, pcur, part, fwd, fwd_row, ckpt, ckpt_min, ckpt_slot,
+               packing)
+
+    return impl
+
+
+def _row_horizontal(r, gray, p1, p2, g_scale, crow, part, hbuf, out, out_row, cost_bits):
+    """:func:`_horizontal_bytes` when ``crow`` holds bytes, else :func:`_horizontal`."""
+
+
+@overload(_row_horizontal, inline="always")
+def _row_horizontal_typed(r, gray, p1, p2, g_scale, crow, part, hbuf, out, out_row, cost_bits):
+    kernel = _horizontal_bytes if crow.dtype == types.uint8 else _horizontal
+
+    def impl(r, gray, p1, p2, g_scale, crow, part, hbuf, out, out_row, cost_bits):
+        kernel(r, gray, p1, p2, g_scale, crow, part, hbuf, out, out_row, cost_bits)
+
+    return impl
 
 
 def byte_lanes_fit(max_cost, p2, pad_cost, narrow_paths):
@@ -976,26 +1017,25 @@ def buffer_shapes(H, W, dp, diagonals, block_rows, narrow_paths, byte_paths=Fals
     With ``narrow_paths`` the path values (and their checkpoints) are kept in
     uint8, which halves the memory they stream through; callers ensure that
     every real path value fits (matching cost + P2 <= 255). With
-    ``byte_paths`` (see :func:`byte_lanes_fit`) the cost rows are bytes too.
+    ``byte_paths`` (see :func:`byte_lanes_fit`) the cost rows are bytes too,
+    which makes :func:`sgm_solve` run the path recurrences on byte lanes.
     """
     ndir = 3 if diagonals else 1
     n_ckpt = max((H + block_rows - 1) // block_rows - 1, 1)
     path = np.uint8 if narrow_paths else np.uint16
     work = (dp + 2 * ndir * W * dp,)
     row2 = (2 * W * dp,)
-    cost16 = (1,) if byte_paths else row2
-    cost8 = row2 if byte_paths else (1,)
+    cost_type = np.uint8 if byte_paths else np.uint16
     return [(work, path), (work, path), ((n_ckpt, ndir, W, dp), path),
             ((n_ckpt, ndir, W), np.uint16), ((block_rows, W, dp), np.uint16),
-            ((2, W, dp), np.uint16), (cost16, np.uint16), (cost16, np.uint16),
-            (cost8, np.uint8), (cost8, np.uint8), (row2, np.uint16)]
+            ((2, W, dp), np.uint16), (row2, cost_type), (row2, cost_type), (row2, np.uint16)]
 
 
 @njit(cache=True, parallel=True)
 def sgm_solve(cl, crev, vol, use_volume, gray, d_min, n_disp, dp, invalid, pad_cost, p1, p2,
               g_scale, diagonals, block_rows, cost_bits, fwd_pad, bounds_even, bounds_down,
-              bounds_up, byte_paths, work_down, work_up, ckpt, ckpt_min, fwd, final, crow_down,
-              crow_up, crow8_down, crow8_up, part_down):
+              bounds_up, work_down, work_up, ckpt, ckpt_min, fwd, final, crow_down, crow_up,
+              part_down):
     """Semi-global matching with 4 or 8 paths and the winners of both images.
 
     Costs come from census strings in 16-bit planes (``cl`` and ``crev``, see
@@ -1032,13 +1072,11 @@ def sgm_solve(cl, crev, vol, use_volume, gray, d_min, n_disp, dp, invalid, pad_c
     work_up[:dp] = 0
     pmin_down = np.zeros((2, ndir, W), np.uint16)
     pmin_up = np.zeros((2, ndir, W), np.uint16)
-    # Vector-aligned: the horizontal paths read each store back at once.
-    hbuf_memory = np.zeros(5 * dp + LANES, np.uint16)
-    start = ((-hbuf_memory.ctypes.data) % (2 * LANES)) // 2
+    # Vector-aligned: the horizontal paths read each store back at once. Path
+    # values have the cost rows' type (bytes on byte lanes).
+    hbuf_memory = np.zeros(5 * dp + BYTE_LANES, crow_down.dtype)
+    start = ((-hbuf_memory.ctypes.data) % BYTE_LANES) // hbuf_memory.itemsize
     hbuf = hbuf_memory[start : start + 5 * dp]
-    hbuf8_memory = np.zeros(5 * dp + BYTE_LANES, np.uint8)
-    start8 = (-hbuf8_memory.ctypes.data) % BYTE_LANES
-    hbuf8 = hbuf8_memory[start8 : start8 + 5 * dp]
     final_flat = final.reshape(-1)
     rmin = np.empty(W + dp, np.uint16)
     rarg = np.empty(W + dp, np.uint16)
@@ -1070,7 +1108,6 @@ def sgm_solve(cl, crev, vol, use_volume, gray, d_min, n_disp, dp, invalid, pad_c
         work = work_up if up else work_down
         pmin = pmin_up if up else pmin_down
         crow = crow_up if up else crow_down
-        crow8 = crow8_up if up else crow8_down
         part = final_flat if up else part_down
         parity = st[_PARITY]
         for j in range(lanes + 1):
@@ -1088,24 +1125,13 @@ def sgm_solve(cl, crev, vol, use_volume, gray, d_min, n_disp, dp, invalid, pad_c
         for t in prange(lanes):
             start_cycles = cycle_counter()
             if st[_COLS] >= 0:
-                if byte_paths:
-                    _columns_bytes(st[_COLS], st[_FROM], st[_FRESH] == 1, bounds[t],
-                                   bounds[t + 1], st[_MODE], source, penalties, gray, ndir,
-                                   crow8, work, dp + parity * half, dp + (1 - parity) * half,
-                                   pmin, parity, 1 - parity, part, fwd, st[_FWD_ROW], ckpt,
-                                   ckpt_min, st[_SAVE], packing)
-                else:
-                    _columns(st[_COLS], st[_FROM], st[_FRESH] == 1, bounds[t], bounds[t + 1],
+                _row_columns(st[_COLS], st[_FROM], st[_FRESH] == 1, bounds[t], bounds[t + 1],
                              st[_MODE], source, penalties, gray, ndir, crow, work,
                              dp + parity * half, dp + (1 - parity) * half, pmin, parity,
                              1 - parity, part, fwd, st[_FWD_ROW], ckpt, ckpt_min, st[_SAVE],
                              packing)
             if t == 0 and st[_HORIZ] >= 0:
-                if byte_paths:
-                    _horizontal_bytes(st[_HORIZ], gray, p1, p2, g_scale, crow8, part, hbuf8,
-                                      fwd, st[_HORIZ_OUT], cost_bits)
-                else:
-                    _horizontal(st[_HORIZ], gray, p1, p2, g_scale, crow, part, hbuf, fwd,
+                _row_horizontal(st[_HORIZ], gray, p1, p2, g_scale, crow, part, hbuf, fwd,
                                 st[_HORIZ_OUT], cost_bits)
             if t == right_lane and st[_SELECT] >= 0:
                 _select_row(st[_SELECT], final, d_min, n_disp, best_k, c_best, c_second,

@@ -439,13 +439,8 @@ def _bsplat(builder, scalar):
 
 @intrinsic
 def bload(typingctx, array, index):
-    """``array.flat[index : index + BYTE_LANES]`` of a uint8 array.
-
-    Other unsigned integer arrays type-check (their raw bytes from element
-    ``index``) so that a kernel specialised for them compiles a byte branch
-    it never runs.
-    """
-    if not isinstance(array, types.Array) or array.dtype not in (types.uint8, types.uint16):
+    """``array.flat[index : index + BYTE_LANES]`` of a uint8 array."""
+    if not isinstance(array, types.Array) or array.dtype != types.uint8:
         return None
     sig = u8vec(array, types.intp)
 
@@ -458,12 +453,8 @@ def bload(typingctx, array, index):
 
 @intrinsic
 def bstore(typingctx, array, index, vec):
-    """Store ``vec`` at ``array.flat[index : index + BYTE_LANES]`` of a uint8 array.
-
-    Other unsigned integer arrays type-check as for :func:`bload`.
-    """
-    if (not isinstance(array, types.Array) or array.dtype not in (types.uint8, types.uint16)
-            or vec != u8vec):
+    """Store ``vec`` at ``array.flat[index : index + BYTE_LANES]`` of a uint8 array."""
+    if not isinstance(array, types.Array) or array.dtype != types.uint8 or vec != u8vec:
         return None
     sig = types.void(array, types.intp, u8vec)
 

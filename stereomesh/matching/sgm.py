@@ -207,7 +207,7 @@ def semi_global_matching(
         left_planes, right_planes, volume, cost != "census", left, int(d_min), int(n_disp), dp,
         int(invalid), int(pad_cost), int(p1), int(p2), float(p2_gradient_scale), paths == 8,
         block_rows, *packing, _lane_columns(w, None), _lane_columns(w, True),
-        _lane_columns(w, False), byte_paths, *buffers,
+        _lane_columns(w, False), *buffers,
     )
     labels = np.maximum(best_k, 0)
     if cost == "census":
