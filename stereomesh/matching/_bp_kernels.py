@@ -700,14 +700,15 @@ def _belief_of(ta, tb, oa, ob, k, lo, hi, fallback):
 
 @njit(cache=True)
 def _final_row(y, s0, x0, x1, wl, d_min, n_disp, use_volume, data, off, msg, winners, scale,
-               offset):
+               offset, winners_only):
     """Left winners of row ``y`` into ``winners`` = ``(best_k, c_best, c_second, c_minus,
     c_plus)``.
 
     The rules of :func:`stereomesh.matching._kernels.select_left` over the labels
     both windows hold (others count as infinitely costly; a neighbour of the
     winner that no window holds reads as the winner's belief). Beliefs are
-    reported relative to the winner's: ``offset + (b − b_best) · scale``.
+    reported relative to the winner's: ``offset + (b − b_best) · scale``. With
+    ``winners_only`` only ``best_k`` is written.
     """
     best_k, c_best, c_second, c_minus, c_plus = winners
     inf = vsplat(np.uint16(INF16))
@@ -729,6 +730,9 @@ def _final_row(y, s0, x0, x1, wl, d_min, n_disp, use_volume, data, off, msg, win
         va = vfill_outside(ta, k_lo - oa, k_hi - oa, INF16)
         vb = vfill_outside(tb, k_lo - ob, k_hi - ob, INF16)
         bv, k = _best_of_two(va, vb, oa, ob)
+        if winners_only:
+            best_k[y, x] = -1 if bv == INF16 else k
+            continue
         if bv == INF16:
             best_k[y, x] = -1
             c_best[y, x] = 0.0
@@ -751,7 +755,7 @@ def _final_row(y, s0, x0, x1, wl, d_min, n_disp, use_volume, data, off, msg, win
 
 
 @njit(cache=True, parallel=True)
-def stream_finest(src, e, dp, parent, pw, iterations, bounds, offset):
+def stream_finest(src, e, dp, parent, pw, iterations, bounds, offset, winners_only=False):
     """Checkerboard belief propagation on the finest level in a ring of rows.
 
     Half-iteration ``h`` (colour ``h % 2``) of row ``y`` runs at step
@@ -763,8 +767,9 @@ def stream_finest(src, e, dp, parent, pw, iterations, bounds, offset):
     lanes of ``bounds``.
 
     Returns ``best_k, c_best, c_second, c_minus, c_plus`` (see
-    :func:`_final_row`) and, per lane and colour, how many senders changed
-    winner in the last iteration.
+    :func:`_final_row`; with ``winners_only`` only ``best_k`` is filled) and,
+    per lane and colour, how many senders changed winner in the last
+    iteration.
     """
     cl = src[0]
     use_volume = src[3]
@@ -808,5 +813,5 @@ def stream_finest(src, e, dp, parent, pw, iterations, bounds, offset):
             yf = t - n_half - 1
             if 0 <= yf < hl:
                 _final_row(yf, yf % ring, x0, x1, wl, d_min, n_disp, use_volume, data, off, msg,
-                           winners, scale, offset)
+                           winners, scale, offset, winners_only)
     return best_k, c_best, c_second, c_minus, c_plus, counts

@@ -249,14 +249,16 @@ def _level_specs(plan_, stream):
     return specs
 
 
-def _pyramid(src, plan_, iterations, tolerance, stream, offset, workspace=None):
+def _pyramid(src, plan_, iterations, tolerance, stream, offset, workspace=None,
+             winners_only=False):
     """Solve every level; returns the finest level's result and per-level figures.
 
     The result is ``("streamed", winners)``, ``("stored", (data, off, msg))`` for
     a windowed finest level held in memory, or ``("full", (data, msg))`` when
     the finest level is the one holding every hypothesis. The levels' arrays
     live in ``workspace`` (a :class:`~stereomesh.matching.sgm.Workspace`),
-    whose memory a caller solving many pairs reuses.
+    whose memory a caller solving many pairs reuses. With ``winners_only`` a
+    streamed finest level fills only the winners.
     """
     from stereomesh.matching import _bp_kernels as K
     from stereomesh.matching.sgm import Workspace
@@ -285,7 +287,8 @@ def _pyramid(src, plan_, iterations, tolerance, stream, offset, workspace=None):
             from stereomesh.matching.sgm import _lane_columns
 
             bounds = _lane_columns(wl, None)  # even shares: no horizontal sweep here
-            out = K.stream_finest(src, e, dp, parent, pw, int(iterations), bounds, offset)
+            out = K.stream_finest(src, e, dp, parent, pw, int(iterations), bounds, offset,
+                                  winners_only)
             counts = out[5]
             changed = float(counts.sum() / (hl * wl)) if iterations > 1 else 1.0
             figures.append({"level": 0, "iterations": int(iterations), "changed": changed})
@@ -398,11 +401,17 @@ def belief_propagation(
     return (beliefs, info) if return_info else beliefs
 
 
-def _winners(src, plan_, d_min, n_disp, iterations, tolerance, stream, offset, workspace=None):
-    """Left winners ``(best_k, c_best, c_second, c_minus, c_plus)`` of one solve."""
+def _winners(src, plan_, d_min, n_disp, iterations, tolerance, stream, offset, workspace=None,
+             winners_only=False):
+    """Left winners ``(best_k, c_best, c_second, c_minus, c_plus)`` of one solve.
+
+    With ``winners_only`` (the mirrored solve, which serves the consistency
+    check) only ``best_k`` is meaningful.
+    """
     from stereomesh.matching import _kernels
 
-    result, figures = _pyramid(src, plan_, iterations, tolerance, stream, offset, workspace)
+    result, figures = _pyramid(src, plan_, iterations, tolerance, stream, offset, workspace,
+                               winners_only)
     if result[0] == "streamed":
         return result[1], figures
     # The finest level in memory: the same rules through the dense beliefs.
@@ -525,7 +534,7 @@ def belief_propagation_matching(
     (best_k, c1, c2, cm, cp), figures = _winners(src, plan_, d_min, n_disp, iterations,
                                                  tolerance, stream, offset, workspace)
     right_k = _winners(src_r, plan_, d_min, n_disp, iterations, tolerance, stream, offset,
-                       workspace)[0][0]
+                       workspace, winners_only=True)[0][0]
     best_right = np.ascontiguousarray(right_k[:, ::-1])
     labels = np.maximum(best_k, 0)
     if cost == "census":
