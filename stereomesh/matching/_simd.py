@@ -50,9 +50,13 @@ def _element_pointer(context, builder, array_type, array, index):
 
 
 def _splat(builder, scalar):
-    vec = builder.insert_element(ir.Constant(_VEC, ir.Undefined), scalar, ir.Constant(_I32, 0))
-    zeros = ir.Constant(ir.VectorType(_I32, LANES), [0] * LANES)
-    return builder.shuffle_vector(vec, ir.Constant(_VEC, ir.Undefined), zeros)
+    """A full vector (512 bits: 32 lanes of i16, 64 of i8) of the integer ``scalar``."""
+    lanes = LANES * 16 // scalar.type.width
+    vec_type = ir.VectorType(scalar.type, lanes)
+    vec = builder.insert_element(ir.Constant(vec_type, ir.Undefined), scalar,
+                                 ir.Constant(_I32, 0))
+    zeros = ir.Constant(ir.VectorType(_I32, lanes), [0] * lanes)
+    return builder.shuffle_vector(vec, ir.Constant(vec_type, ir.Undefined), zeros)
 
 
 def _to_i16(builder, value, value_type):
@@ -143,12 +147,15 @@ def vsplat(typingctx, value):
     return sig, codegen
 
 
-def _binary(emit, doc):
+def _binary(emit, doc, vec_type=None):
+    """A lane-wise intrinsic of two vectors of ``vec_type`` (16-bit by default)."""
+
     @intrinsic
     def op(typingctx, a, b):
-        if a != u16vec or b != u16vec:
+        vec = vec_type or u16vec
+        if a != vec or b != vec:
             return None
-        sig = u16vec(u16vec, u16vec)
+        sig = vec(vec, vec)
 
         def codegen(context, builder, signature, args):
             return emit(builder, *args)
@@ -162,12 +169,18 @@ def _binary(emit, doc):
 vadd = _binary(lambda b, x, y: b.add(x, y), "Lane-wise ``a + b`` modulo 2**16.")
 vsub = _binary(lambda b, x, y: b.sub(x, y), "Lane-wise ``a - b`` modulo 2**16.")
 vand = _binary(lambda b, x, y: b.and_(x, y), "Lane-wise bitwise ``a & b``.")
-vmin = _binary(lambda b, x, y: b.select(b.icmp_unsigned("<", x, y), x, y), "Lane-wise minimum.")
 vmax = _binary(lambda b, x, y: b.select(b.icmp_unsigned(">", x, y), x, y), "Lane-wise maximum.")
-vadds = _binary(
-    lambda b, x, y: _call(b, f"llvm.uadd.sat.v{LANES}i16", _VEC, x, y),
-    "Lane-wise ``a + b`` saturated at 0xFFFF.",
-)
+def _add_saturated(builder, x, y):
+    name = f"llvm.uadd.sat.v{x.type.count}i{x.type.element.width}"
+    return _call(builder, name, x.type, x, y)
+
+
+def _minimum(builder, x, y):
+    return builder.select(builder.icmp_unsigned("<", x, y), x, y)
+
+
+vadds = _binary(_add_saturated, "Lane-wise ``a + b`` saturated at 0xFFFF.")
+vmin = _binary(_minimum, "Lane-wise minimum.")
 
 
 @intrinsic
@@ -217,9 +230,8 @@ def _in_range(builder, key, lo, hi):
     hi_c = clamp(hi)
     hi_c = builder.select(builder.icmp_signed("<", hi_c, lo_c), lo_c, hi_c)
     # lo <= key < hi  <=>  (key - lo) mod 2**bits < hi - lo, unsigned.
-    splat = _splat if lane.width == 16 else _bsplat
-    shifted = builder.sub(key, splat(builder, builder.trunc(lo_c, lane)))
-    width = splat(builder, builder.trunc(builder.sub(hi_c, lo_c), lane))
+    shifted = builder.sub(key, _splat(builder, builder.trunc(lo_c, lane)))
+    width = _splat(builder, builder.trunc(builder.sub(hi_c, lo_c), lane))
     return builder.icmp_unsigned("<", shifted, width)
 
 
@@ -277,16 +289,18 @@ def vlane_index(typingctx, offset):
     return sig, codegen
 
 
-def _shuffle_pair(offset, doc):
-    # Lanes offset .. offset + LANES - 1 of the concatenation (a, b).
+def _shuffle_pair(offset, doc, vec_type=None):
+    # Lanes offset .. offset + n - 1 of the concatenation (a, b) of n-lane vectors.
     @intrinsic
     def op(typingctx, a, b):
-        if a != u16vec or b != u16vec:
+        vec = vec_type or u16vec
+        if a != vec or b != vec:
             return None
-        sig = u16vec(u16vec, u16vec)
+        sig = vec(vec, vec)
 
         def codegen(context, builder, signature, args):
-            mask = ir.Constant(ir.VectorType(_I32, LANES), [offset + i for i in range(LANES)])
+            n = args[0].type.count
+            mask = ir.Constant(ir.VectorType(_I32, n), [offset + i for i in range(n)])
             return builder.shuffle_vector(args[0], args[1], mask)
 
         return sig, codegen
@@ -431,12 +445,6 @@ class _U8VectorModel(models.PrimitiveModel):
         super().__init__(dmm, fe_type, _BVEC)
 
 
-def _bsplat(builder, scalar):
-    vec = builder.insert_element(ir.Constant(_BVEC, ir.Undefined), scalar, ir.Constant(_I32, 0))
-    zeros = ir.Constant(ir.VectorType(_I32, BYTE_LANES), [0] * BYTE_LANES)
-    return builder.shuffle_vector(vec, ir.Constant(_BVEC, ir.Undefined), zeros)
-
-
 @intrinsic
 def bload(typingctx, array, index):
     """``array.flat[index : index + BYTE_LANES]`` of a uint8 array."""
@@ -477,57 +485,18 @@ def bsplat(typingctx, value):
         v = args[0]
         width = signature.args[0].bitwidth
         v = builder.trunc(v, _I8) if width > 8 else (builder.zext(v, _I8) if width < 8 else v)
-        return _bsplat(builder, v)
+        return _splat(builder, v)
 
     return sig, codegen
 
 
-def _byte_binary(emit, doc):
-    @intrinsic
-    def op(typingctx, a, b):
-        if a != u8vec or b != u8vec:
-            return None
-        sig = u8vec(u8vec, u8vec)
-
-        def codegen(context, builder, signature, args):
-            return emit(builder, *args)
-
-        return sig, codegen
-
-    op.__doc__ = doc
-    return op
-
-
-bsub = _byte_binary(lambda b, x, y: b.sub(x, y), "Lane-wise ``a - b`` modulo 2**8.")
-bmin = _byte_binary(lambda b, x, y: b.select(b.icmp_unsigned("<", x, y), x, y),
-                    "Lane-wise minimum.")
-badds = _byte_binary(
-    lambda b, x, y: _call(b, f"llvm.uadd.sat.v{BYTE_LANES}i8", _BVEC, x, y),
-    "Lane-wise ``a + b`` saturated at 0xFF.",
-)
-
-
-def _byte_shuffle_pair(offset, doc):
-    @intrinsic
-    def op(typingctx, a, b):
-        if a != u8vec or b != u8vec:
-            return None
-        sig = u8vec(u8vec, u8vec)
-
-        def codegen(context, builder, signature, args):
-            mask = ir.Constant(ir.VectorType(_I32, BYTE_LANES),
-                               [offset + i for i in range(BYTE_LANES)])
-            return builder.shuffle_vector(args[0], args[1], mask)
-
-        return sig, codegen
-
-    op.__doc__ = doc
-    return op
-
-
-bshift_in_low = _byte_shuffle_pair(BYTE_LANES - 1,
-                                   "``bshift_in_low(below, cur)``: lane k holds entry k - 1.")
-bshift_in_high = _byte_shuffle_pair(1, "``bshift_in_high(cur, above)``: lane k holds entry k + 1.")
+bsub = _binary(lambda b, x, y: b.sub(x, y), "Lane-wise ``a - b`` modulo 2**8.", u8vec)
+bmin = _binary(_minimum, "Lane-wise minimum.", u8vec)
+badds = _binary(_add_saturated, "Lane-wise ``a + b`` saturated at 0xFF.", u8vec)
+bshift_in_low = _shuffle_pair(BYTE_LANES - 1,
+                              "``bshift_in_low(below, cur)``: lane k holds entry k - 1.", u8vec)
+bshift_in_high = _shuffle_pair(1, "``bshift_in_high(cur, above)``: lane k holds entry k + 1.",
+                               u8vec)
 
 
 @intrinsic
@@ -552,8 +521,8 @@ def bfill_outside(typingctx, vec, lo, hi, value):
 
     def codegen(context, builder, signature, args):
         v, lo_, hi_, fill = args
-        fill_v = _bsplat(builder, builder.trunc(fill, _I8) if signature.args[3].bitwidth > 8
-                         else fill)
+        fill_v = _splat(builder, builder.trunc(fill, _I8) if signature.args[3].bitwidth > 8
+                        else fill)
         return builder.select(_in_range(builder, _BYTE_INDEX, lo_, hi_), v, fill_v)
 
     return sig, codegen
