@@ -6,7 +6,21 @@ from numba import njit
 
 from stereomesh.matching import _kernels, _sgm_kernels
 from stereomesh.matching._simd import (
+    BYTE_LANES,
     LANES,
+    badds,
+    bfill_outside,
+    bhmin,
+    bload,
+    bmin,
+    bnarrow,
+    bshift_in_high,
+    bshift_in_low,
+    bsplat,
+    bstore,
+    bsub,
+    bwiden_high,
+    bwiden_low,
     vfill_outside,
     vhamming,
     vhmin,
@@ -249,3 +263,43 @@ def test_census_planes_of_image_equal_the_split_strings(window):
             _kernels.census_planes_of_image(padded, ww, wh, planes, 2, 7, reverse),
             _kernels.census_planes(_kernels.census_transform(padded, ww, wh), planes, 2, 7,
                                    reverse))
+
+
+@njit(cache=True)
+def _byte_probe(a8, a16, out8, out16, lo, hi):
+    v = bload(a8, 0)
+    w = bload(a8, BYTE_LANES)
+    bstore(out8, 0, bshift_in_low(v, w))
+    bstore(out8, BYTE_LANES, bshift_in_high(v, w))
+    bstore(out8, 2 * BYTE_LANES, bmin(v, w))
+    bstore(out8, 3 * BYTE_LANES, badds(v, w))
+    bstore(out8, 4 * BYTE_LANES, bsub(v, w))
+    bstore(out8, 5 * BYTE_LANES, bfill_outside(v, lo, hi, 255))
+    bstore(out8, 6 * BYTE_LANES, bnarrow(vload(a16, 0), vload(a16, LANES)))
+    bstore(out8, 7 * BYTE_LANES, bsplat(7))
+    vstore(out16, 0, bwiden_low(v))
+    vstore(out16, LANES, bwiden_high(v))
+    return bhmin(v)
+
+
+def test_byte_intrinsics_against_numpy():
+    rng = np.random.default_rng(1)
+    a8 = rng.integers(0, 256, 2 * BYTE_LANES).astype(np.uint8)
+    a16 = rng.integers(0, 2**16, 2 * LANES).astype(np.uint16)
+    out8 = np.zeros(8 * BYTE_LANES, np.uint8)
+    out16 = np.zeros(2 * LANES, np.uint16)
+    lo, hi = 5, 40
+    smallest = _byte_probe(a8, a16, out8, out16, lo, hi)
+    v, w = a8[:BYTE_LANES].astype(int), a8[BYTE_LANES:].astype(int)
+    lane = np.arange(BYTE_LANES)
+    parts = out8.reshape(8, BYTE_LANES)
+    assert smallest == v.min()
+    np.testing.assert_array_equal(parts[0], np.concatenate([[v[-1]], w[:-1]]))
+    np.testing.assert_array_equal(parts[1], np.concatenate([v[1:], [w[0]]]))
+    np.testing.assert_array_equal(parts[2], np.minimum(v, w))
+    np.testing.assert_array_equal(parts[3], np.minimum(v + w, 255))
+    np.testing.assert_array_equal(parts[4], (v - w) % 256)
+    np.testing.assert_array_equal(parts[5], np.where((lane >= lo) & (lane < hi), v, 255))
+    np.testing.assert_array_equal(parts[6], a16 % 256)
+    np.testing.assert_array_equal(parts[7], 7)
+    np.testing.assert_array_equal(out16, v)
