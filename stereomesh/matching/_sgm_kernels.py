@@ -179,6 +179,41 @@ def _pad_fix_block(work, nb, tail):
 
 
 @njit(cache=True, inline="always")
+def _arrivals(r, rs, fresh, x, W, dp, ndir, prev_off, pmin, pprev, gray, penalties):
+    """Per direction arriving at ``(r, x)`` from row ``rs``: ``(src, min, P2)`` three times.
+
+    Where the previous pixel's path values start in ``work``, their minimum
+    and the penalty of the step; zeros where the path starts afresh (the
+    all-zero row at the start of ``work``).
+    """
+    p1, p2, g_scale = penalties
+    src0 = 0
+    m0 = 0
+    pen0 = 0
+    src1 = 0
+    m1 = 0
+    pen1 = 0
+    src2 = 0
+    m2 = 0
+    pen2 = 0
+    if not fresh:
+        g = gray[r, x]
+        src0 = prev_off + x * dp
+        m0 = np.int64(pmin[pprev, 0, x])
+        pen0 = _penalty2(p1, p2, g_scale, g, gray[rs, x])
+        if ndir == 3:
+            if x >= 1:
+                src1 = prev_off + (W + x - 1) * dp
+                m1 = np.int64(pmin[pprev, 1, x - 1])
+                pen1 = _penalty2(p1, p2, g_scale, g, gray[rs, x - 1])
+            if x + 1 < W:
+                src2 = prev_off + (2 * W + x + 1) * dp
+                m2 = np.int64(pmin[pprev, 2, x + 1])
+                pen2 = _penalty2(p1, p2, g_scale, g, gray[rs, x + 1])
+    return src0, m0, pen0, src1, m1, pen1, src2, m2, pen2
+
+
+@njit(cache=True, inline="always")
 def _columns(r, rs, fresh, x0, x1, mode, source, penalties, gray, ndir, crow, work, prev_off,
              cur_off, pmin, pprev, pcur, part, fwd, fwd_row, ckpt, ckpt_min, ckpt_slot, packing):
     """Cost row and the non-horizontal paths of columns ``[x0, x1)`` of row ``r``.
@@ -196,7 +231,7 @@ def _columns(r, rs, fresh, x0, x1, mode, source, penalties, gray, ndir, crow, wo
     costs from the low bits of the forward sums instead of computing them.
     """
     cl, crev, vol, use_volume, d_min, n_disp, invalid, pad_cost = source
-    p1, p2, g_scale = penalties
+    p1 = penalties[0]
     cost_bits, fwd_pad = packing
     unpack = mode == 2 and cost_bits > 0
     W = gray.shape[1]
@@ -212,30 +247,8 @@ def _columns(r, rs, fresh, x0, x1, mode, source, penalties, gray, ndir, crow, wo
                   pad_cost)
     for x in range(x0, x1):
         cb = ((r & 1) * W + x) * dp
-        g = gray[r, x]
-        # Per direction: where its previous values are, their minimum, the penalty.
-        src0 = 0
-        m0 = 0
-        pen0 = 0
-        src1 = 0
-        m1 = 0
-        pen1 = 0
-        src2 = 0
-        m2 = 0
-        pen2 = 0
-        if not fresh:
-            src0 = prev_off + x * dp
-            m0 = np.int64(pmin[pprev, 0, x])
-            pen0 = _penalty2(p1, p2, g_scale, g, gray[rs, x])
-            if ndir == 3:
-                if x >= 1:
-                    src1 = prev_off + (W + x - 1) * dp
-                    m1 = np.int64(pmin[pprev, 1, x - 1])
-                    pen1 = _penalty2(p1, p2, g_scale, g, gray[rs, x - 1])
-                if x + 1 < W:
-                    src2 = prev_off + (2 * W + x + 1) * dp
-                    m2 = np.int64(pmin[pprev, 2, x + 1])
-                    pen2 = _penalty2(p1, p2, g_scale, g, gray[rs, x + 1])
+        src0, m0, pen0, src1, m1, pen1, src2, m2, pen2 = _arrivals(
+            r, rs, fresh, x, W, dp, ndir, prev_off, pmin, pprev, gray, penalties)
         base0 = vsplat(np.uint16(m0 + pen0))
         base1 = vsplat(np.uint16(m1 + pen1))
         base2 = vsplat(np.uint16(m2 + pen2))
@@ -326,7 +339,7 @@ def _columns_bytes(r, rs, fresh, x0, x1, mode, source, penalties, gray, ndir, cr
     of ``BYTE_LANES``; the caller checks :func:`byte_lanes_fit`.
     """
     cl, crev, vol, use_volume, d_min, n_disp, invalid, pad_cost = source
-    p1, p2, g_scale = penalties
+    p1 = penalties[0]
     cost_bits, fwd_pad = packing
     unpack = mode == 2 and cost_bits > 0
     W = gray.shape[1]
@@ -342,29 +355,8 @@ def _columns_bytes(r, rs, fresh, x0, x1, mode, source, penalties, gray, ndir, cr
                   pad_cost)
     for x in range(x0, x1):
         cb = ((r & 1) * W + x) * dp
-        g = gray[r, x]
-        src0 = 0
-        m0 = 0
-        pen0 = 0
-        src1 = 0
-        m1 = 0
-        pen1 = 0
-        src2 = 0
-        m2 = 0
-        pen2 = 0
-        if not fresh:
-            src0 = prev_off + x * dp
-            m0 = np.int64(pmin[pprev, 0, x])
-            pen0 = _penalty2(p1, p2, g_scale, g, gray[rs, x])
-            if ndir == 3:
-                if x >= 1:
-                    src1 = prev_off + (W + x - 1) * dp
-                    m1 = np.int64(pmin[pprev, 1, x - 1])
-                    pen1 = _penalty2(p1, p2, g_scale, g, gray[rs, x - 1])
-                if x + 1 < W:
-                    src2 = prev_off + (2 * W + x + 1) * dp
-                    m2 = np.int64(pmin[pprev, 2, x + 1])
-                    pen2 = _penalty2(p1, p2, g_scale, g, gray[rs, x + 1])
+        src0, m0, pen0, src1, m1, pen1, src2, m2, pen2 = _arrivals(
+            r, rs, fresh, x, W, dp, ndir, prev_off, pmin, pprev, gray, penalties)
         base0 = bsplat(m0 + pen0)
         base1 = bsplat(m1 + pen1)
         base2 = bsplat(m2 + pen2)
