@@ -283,6 +283,8 @@ def _byte_probe(a8, a16, out8, out16, lo, hi):
 
 
 def test_byte_intrinsics_against_numpy():
+    # Reference: numpy's uint8 arithmetic on the same lanes (saturation and
+    # modular wrap written out with np.minimum and % 256).
     rng = np.random.default_rng(1)
     a8 = rng.integers(0, 256, 2 * BYTE_LANES).astype(np.uint8)
     a16 = rng.integers(0, 2**16, 2 * LANES).astype(np.uint16)
