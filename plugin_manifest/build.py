@@ -2,9 +2,10 @@
 
 Usage: ``python plugin_manifest/build.py [--out dist]`` with an interpreter that
 has stereomesh installed (the schema comes from ``stereomesh.params.schema()``).
-Writes ``dist/stereomesh-<version>.zip`` (the add-on, its manifest and
-``schema.json``; no core inside) and ``dist/stereomesh-<version>-py3-none-any.whl``
-(``pip wheel --no-deps``), which the add-on's "Set Up Engine" installs.
+Writes ``dist/stereomesh-<version>.zip`` (the add-on, its manifest,
+``schema.json`` and ``build.json`` with the version; no core inside) and
+``dist/stereomesh-<version>-py3-none-any.whl`` (``pip wheel --no-deps``), which the
+add-on's "Set Up Engine" installs.
 """
 
 from __future__ import annotations
@@ -50,6 +51,7 @@ def build_zip(out_dir: Path) -> Path:
     with zipfile.ZipFile(target, "w") as zf:
         _entry(zf, "blender_manifest.toml", manifest.encode("utf-8"))
         _entry(zf, "schema.json", (json.dumps(schema(), indent=1) + "\n").encode("utf-8"))
+        _entry(zf, "build.json", (json.dumps({"version": version}) + "\n").encode("utf-8"))
         for path in sorted(ADDON.glob("*.py")):
             _entry(zf, path.name, path.read_bytes())
         _entry(zf, "LICENSE", (REPO / "LICENSE").read_bytes())

@@ -171,6 +171,17 @@ def _detect():
     return {"missing": message, "found": found}
 
 
+@check("engine_setup_refuses_a_wrong_wheel")
+def _setup():
+    try:
+        bpy.ops.stereomesh.setup_engine(wheel=pair["calib"])
+        raise AssertionError("a JSON file was taken for a wheel")
+    except RuntimeError as exc:
+        message = str(exc)
+    assert ".whl" in message and "calib.json" in message, message
+    return message
+
+
 @check("mesh_from_pair")
 def _mesh():
     before = mesh_objects()
@@ -199,6 +210,8 @@ def _mesh():
     cams = [o for o in bpy.data.objects if o.type == "CAMERA" and "stereomesh_rig" in o]
     assert len(cams) == 1
     state["mesh"], state["camera"] = obj.name, cams[0].name
+    hello = sys.modules[MODULE + ".client"].current_client().hello
+    assert hello["version"] == sys.modules[MODULE + ".properties"].build_version(), hello
     return {"object": obj.name, "vertices": len(mesh.vertices), "faces": len(mesh.polygons),
             "seconds": round(seconds, 2), "bounds": [lo.tolist(), hi.tolist()]}
 

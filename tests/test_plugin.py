@@ -96,12 +96,13 @@ def test_manifest_validates_with_the_editors_tool(bpy_python, plugin_zip):
     import zipfile
 
     names = zipfile.ZipFile(plugin_zip).namelist()
-    assert "blender_manifest.toml" in names and "schema.json" in names
+    assert {"blender_manifest.toml", "schema.json", "build.json", "__init__.py"} <= set(names)
     assert not any(n.startswith("stereomesh/") or "matching" in n for n in names), names
 
 
 @pytest.mark.parametrize("name", [
     "install", "heavy_imports", "menus", "schema_properties", "python_detection",
+    "engine_setup_refuses_a_wrong_wheel",
 ])
 def test_extension_installs_and_registers(session, name):
     _assert(session, name)

@@ -146,6 +146,22 @@ def test_cloud_clean_surface_fill_chain(worker, tmp_path):
     assert res["figures"]["repair"]["holes_filled"] >= 1 and filled.filled.sum() > 0
 
 
+def test_surface_without_pixels_is_poisson(worker, tmp_path):
+    res = worker.request(25, "cloud_from_pair", {**PAIR, "out_dir": str(tmp_path / "a")}, FAST)
+    cloud = read_cloud_ply(res["files"]["cloud"])
+    # A cloud from elsewhere has no pixels: the worker falls back to screened Poisson.
+    cloud = cloud.subset(np.arange(0, len(cloud), 8))
+    cloud.pixels = None
+    write_exchange_cloud_ply(tmp_path / "plain.ply", cloud)
+    res = worker.request(26, "surface_from_cloud", {"cloud": str(tmp_path / "plain.ply"),
+                                                    "repair": False,
+                                                    "out_dir": str(tmp_path / "b")},
+                         {"poisson_depth": 7})
+    assert res["type"] == "result", res
+    assert res["figures"]["surface"]["method"] == "poisson"
+    assert len(read_mesh_ply(res["files"]["mesh"]).faces) > 1000
+
+
 def test_cancel_stops_a_running_action_and_the_worker_goes_on(worker, tmp_path):
     worker.send(id=30, action="mesh_from_pair", args={**PAIR, "out_dir": str(tmp_path)},
                 params=FAST)

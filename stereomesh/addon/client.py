@@ -160,6 +160,11 @@ class WorkerClient:
             except (OSError, subprocess.TimeoutExpired, ValueError):
                 self.proc.kill()
                 self.proc.wait()
+        if self.proc.returncode == 0 and self._log_path:  # a crash's log stays for reading
+            try:
+                os.remove(self._log_path)
+            except OSError:
+                pass
 
     def _read(self, proc) -> None:
         for line in proc.stdout:
@@ -216,7 +221,7 @@ class WorkerClient:
                         j.error = WorkerError(
                             "crash", f"the engine stopped unexpectedly (exit code "
                             f"{msg.get('code')}) during {j.action}; the next action starts "
-                            f"a new one{self._log_tail()}")
+                            f"a new one (log: {self._log_path}){self._log_tail()}")
                 continue
             if kind == "progress" and msg.get("id") is None:
                 self.warm_message = msg.get("message", "")

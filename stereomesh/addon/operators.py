@@ -68,6 +68,11 @@ class _WorkerAction:
             args = self.prepare(context, self._folder)
             args["out_dir"] = str(self._folder / "out")
             worker = client.get_client(preferences.find_python())
+            engine = worker.hello.get("version")
+            if engine != properties.build_version():
+                self.report({"WARNING"}, f"engine stereomesh {engine}, add-on "
+                            f"{properties.build_version()}: options may differ; install "
+                            "matching versions")
             if worker.busy() is not None:
                 raise InputProblem(f"the engine is busy with {worker.busy().action}; wait for "
                                    "it or cancel it (Esc)")
@@ -332,7 +337,14 @@ class STEREOMESH_OT_clean_cloud(_SelectedAction, bpy.types.Operator):
     def finish(self, context, result):
         obj = self.bring_in(context, result["files"]["cloud"], points=True)
         counts = result["figures"].get("filter_cloud", {}).get("points", {})
-        return f"{obj.name}: {len(obj.data.vertices)} points kept ({counts})"
+        steps, last = [], counts.get("input")
+        for key, value in counts.items():
+            if key != "input" and last is not None and value < last:
+                steps.append(f"{last - value} by {key.removeprefix('after_').replace('_', ' ')}")
+            last = value
+        removed = ", ".join(steps) or "none"
+        return (f"{obj.name}: {len(obj.data.vertices)} of {counts.get('input', '?')} points "
+                f"kept; removed: {removed}")
 
 
 class STEREOMESH_OT_surface_from_cloud(_SelectedAction, bpy.types.Operator):

@@ -1,6 +1,7 @@
 """Operator properties built from the core's parameter schema (``schema.json``).
 
-The build writes ``stereomesh.params.schema()`` beside this file, so the add-on
+The build writes ``stereomesh.params.schema()`` beside this file (and the
+version it was built from in ``build.json``), so the add-on
 knows every parameter (type, default, range, choices, help) without importing
 the core. Operator properties keep the last values used in a session, as the
 editor does for every operator.
@@ -25,6 +26,15 @@ def schema() -> list[dict]:
     except (OSError, ValueError) as exc:
         raise RuntimeError(f"{SCHEMA_FILE} is missing or broken ({exc}); rebuild the add-on "
                            "with 'make plugin'") from None
+
+
+def build_version() -> str:
+    """The stereomesh version the add-on was built from (``build.json`` beside it)."""
+    try:
+        data = json.loads(SCHEMA_FILE.with_name("build.json").read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return "unknown"
+    return str(data.get("version", "unknown"))
 
 
 def rows(sections: tuple[str, ...]) -> list[dict]:
