@@ -170,19 +170,29 @@ def _pair_annotations() -> dict:
             description="right image; empty for a single file holding both views"),
         "calib": bpy.props.StringProperty(name="Calibration", subtype="FILE_PATH",
                                           description="calibration JSON of the pair"),
+        "layout": bpy.props.EnumProperty(
+            name="Layout", default="pair",
+            items=[("pair", "Two Files or MPO", "left and right image files, or one MPO file "
+                    "from a stereo camera"),
+                   ("side-by-side", "Side by Side", "one scan holding both views next to each "
+                    "other (a stereograph card)")]),
+        "swap": bpy.props.BoolProperty(
+            name="Swap Views", default=False,
+            description="the left view is on the right (cross-eyed order)"),
     }
 
 
 class _PairAction(_WorkerAction):
     def inputs(self):
-        return ("left", "right", "calib")
+        return ("left", "right", "calib", "layout", "swap")
 
     def pair_args(self) -> dict:
         inputs = [_file(self.left, "left image")]
         if self.right:
             inputs.append(_file(self.right, "right image"))
         calib = _file(self.calib, "calibration file") if self.calib else None
-        return {"inputs": inputs, "calib": calib}
+        return {"inputs": inputs, "calib": calib, "layout": self.layout,
+                "swap": bool(self.swap)}
 
     def camera(self, context, rig: dict):
         from . import scene
@@ -253,7 +263,7 @@ class STEREOMESH_OT_cloud_from_pair(_PairAction, bpy.types.Operator):
     sections = ("disparity", "cloud")
 
     def inputs(self):
-        return ("left", "right", "calib", "clean")
+        return ("left", "right", "calib", "layout", "swap", "clean")
 
     def prepare(self, context, folder):
         args = self.pair_args()
