@@ -26,18 +26,17 @@ sys.path.insert(0, str(REPO))
 from stereomesh.evaluation import covisible_points, f_score, sample_surface  # noqa: E402
 from stereomesh.io.pfm import read_pfm  # noqa: E402
 from stereomesh.io.ply import read_ply  # noqa: E402
-from stereomesh.params import Params  # noqa: E402
-from stereomesh.pipeline import run_pipeline  # noqa: E402
+from stereomesh.jobs import run_job  # noqa: E402
+from stereomesh.params import load_config  # noqa: E402
 
 
 def demo_figures(out: Path) -> None:
     from PIL import Image
 
     demo = REPO / "demo_data"
-    params = Params().with_overrides({"disp_range": "64:192"})
+    params = load_config(demo / "params.toml")
     t = time.perf_counter()
-    report = run_pipeline([demo / "left.png", demo / "right.png"], demo / "calib.json", out,
-                          params)
+    report = run_job([demo / "left.png", demo / "right.png"], demo / "calib.json", out, params)
     wall = time.perf_counter() - t
     disp = read_pfm(out / "disparity.pfm")
     classes = np.asarray(Image.open(out / "occlusion.png"))

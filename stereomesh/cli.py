@@ -14,8 +14,6 @@ from stereomesh.errors import InputError
 
 EXIT_OK, EXIT_INTERNAL, EXIT_BAD_INPUT = 0, 1, 2
 
-DEMO_DISP_RANGE = "64:192"
-
 
 def _progress_bar(quiet: bool):
     """A progress callback drawing a bar on a terminal; silent otherwise."""
@@ -92,13 +90,14 @@ def _summary(report: dict, kind: str) -> str:
 
 
 def _cmd_disparity(args) -> int:
-    from stereomesh.pipeline import run_disparity
+    from stereomesh.jobs import run_job
 
     params = _params(args, ("disparity",))
     progress, close = _progress_bar(args.quiet)
     try:
-        report = run_disparity([args.left, args.right], args.calib, args.out, params, progress,
-                               previews=args.previews)
+        report = run_job([args.left, args.right], args.calib, args.out, params,
+                         command="disparity", stop_after="disparity", previews=args.previews,
+                         progress=progress)
     finally:
         close()
     if not args.quiet:
@@ -107,13 +106,13 @@ def _cmd_disparity(args) -> int:
 
 
 def _cmd_run(args) -> int:
+    from stereomesh.jobs import run_job
     from stereomesh.params import SECTIONS
-    from stereomesh.pipeline import run_pipeline
 
     params = _params(args, tuple(SECTIONS))
     progress, close = _progress_bar(args.quiet)
     try:
-        report = run_pipeline(args.inputs, args.calib, args.out, params, progress)
+        report = run_job(args.inputs, args.calib, args.out, params, progress=progress)
     finally:
         close()
     if not args.quiet:
@@ -123,33 +122,34 @@ def _cmd_run(args) -> int:
 
 def demo_inputs(out_dir: Path) -> Path:
     """The folder holding the demo pair: the repo's ``demo_data/`` or a fresh render."""
-    repo_data = Path(__file__).resolve().parent.parent / "demo_data"
-    needed = ("left.png", "right.png", "calib.json")
-    if all((repo_data / n).is_file() for n in needed):
-        return repo_data
-    from stereomesh.demo_scene import write_demo_scene
+    from stereomesh.demo_scene import DEMO_FILES, write_demo_scene
 
+    repo_data = Path(__file__).resolve().parent.parent / "demo_data"
+    if all((repo_data / n).is_file() for n in DEMO_FILES):
+        return repo_data
     target = out_dir / "input"
     write_demo_scene(target)
     return target
 
 
 def _cmd_demo(args) -> int:
-    from stereomesh.params import Params
-    from stereomesh.pipeline import run_pipeline
+    from stereomesh.jobs import prepare_out_dir, run_job
+    from stereomesh.params import load_config
 
+    prepare_out_dir(args.out)
     data = demo_inputs(args.out)
-    params = Params().with_overrides({"disp_range": DEMO_DISP_RANGE})
+    # The scene's own parameters (its disparity range) come with the scene.
+    params = load_config(data / "params.toml")
     progress, close = _progress_bar(args.quiet)
     try:
-        report = run_pipeline([data / "left.png", data / "right.png"], data / "calib.json",
-                              args.out, params, progress, command="demo")
+        report = run_job([data / "left.png", data / "right.png"], data / "calib.json",
+                         args.out, params, command="demo", progress=progress)
     finally:
         close()
-    mesh = Path(report["outputs"]["mesh"]).resolve()
     if not args.quiet:
+        mesh = Path(report["outputs"]["mesh"]).resolve()
         print(_summary(report, "demo"))
-    print(f"mesh: {mesh}")
+        print(f"mesh: {mesh}")
     return EXIT_OK
 
 
@@ -157,6 +157,20 @@ def _cmd_worker(args) -> int:
     from stereomesh.worker import main as worker_main
 
     return worker_main(["--no-warm-up"] if args.no_warm_up else [])
+
+
+def configure_process() -> None:
+    """Process-wide settings of a command (never made on ``import stereomesh``).
+
+    The disparity kernels start one parallel region per image row; OpenMP
+    starts one in about a microsecond, numba's fallback work queue in about a
+    hundred, so OpenMP is preferred (a user's own setting wins). Then numpy
+    is asked for small pages (:func:`_prefer_small_pages`).
+    """
+    import os
+
+    os.environ.setdefault("NUMBA_THREADING_LAYER_PRIORITY", "omp tbb workqueue")
+    _prefer_small_pages()
 
 
 def _prefer_small_pages() -> None:
@@ -183,7 +197,7 @@ def _prefer_small_pages() -> None:
 def main(argv: list[str] | None = None) -> int:
     parser = _build_parser()
     args = parser.parse_args(argv)
-    _prefer_small_pages()
+    configure_process()
     commands = {"disparity": _cmd_disparity, "run": _cmd_run, "demo": _cmd_demo,
                 "worker": _cmd_worker}
     try:

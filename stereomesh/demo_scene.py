@@ -817,6 +817,27 @@ little sensor noise.
 """
 
 
+DEMO_FILES = ("left.png", "right.png", "calib.json", "params.toml")
+"""The files ``stereomesh demo`` runs on."""
+
+
+def demo_disparity_range(gt_disparity: np.ndarray) -> str:
+    """The search range the demo runs with: the true disparities and a margin.
+
+    The margin (at least 4 px below, 16 px above, ends on multiples of 16 and
+    64) keeps the truth away from the ends of the range, where winners are
+    rejected as "outside the search range".
+
+    Examples
+    --------
+    >>> demo_disparity_range(np.array([72.6, 128.4]))
+    '64:192'
+    """
+    lo = 16 * int(np.floor((float(np.nanmin(gt_disparity)) - 4.0) / 16.0))
+    hi = 64 * int(np.ceil((float(np.nanmax(gt_disparity)) + 16.0) / 64.0))
+    return f"{lo}:{hi}"
+
+
 def write_demo_scene(out_dir: str | Path, width: int = BASE_WIDTH) -> dict[str, Path]:
     """Render the demo scene and write it into ``out_dir``.
 
@@ -830,8 +851,8 @@ def write_demo_scene(out_dir: str | Path, width: int = BASE_WIDTH) -> dict[str, 
     Returns
     -------
     dict of str to Path
-        ``left``, ``right``, ``calib``, ``gt_disparity``, ``gt_occlusion``,
-        ``gt_mesh`` and ``readme`` paths.
+        ``left``, ``right``, ``calib``, ``params`` (the demo's parameter
+        file), ``gt_disparity``, ``gt_occlusion``, ``gt_mesh`` and ``readme`` paths.
     """
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
@@ -843,6 +864,7 @@ def write_demo_scene(out_dir: str | Path, width: int = BASE_WIDTH) -> dict[str, 
             ("left", "left.png"),
             ("right", "right.png"),
             ("calib", "calib.json"),
+            ("params", "params.toml"),
             ("gt_disparity", "gt_disparity.pfm"),
             ("gt_occlusion", "gt_occlusion.png"),
             ("gt_mesh", "gt_mesh.ply"),
@@ -858,6 +880,11 @@ def write_demo_scene(out_dir: str | Path, width: int = BASE_WIDTH) -> dict[str, 
     if not cv2.imwrite(str(paths["gt_disparity"]), data["gt_disparity"]):
         raise OSError(f"{paths['gt_disparity']}: could not write")
     paths["calib"].write_text(json.dumps(calib) + "\n", encoding="utf-8")
+    paths["params"].write_text(
+        "# Parameters of the demo run: the search range covers the true disparities.\n"
+        f'[disparity]\ndisp_range = "{demo_disparity_range(data["gt_disparity"])}"\n',
+        encoding="utf-8",
+    )
     _write_ply(paths["gt_mesh"], data["gt_mesh_vertices"], data["gt_mesh_faces"])
     w, h = calib["image_size"]
     disp = data["gt_disparity"]

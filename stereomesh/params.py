@@ -17,6 +17,12 @@ from typing import Any
 
 from stereomesh.errors import InputError
 
+MAX_P2 = 1000
+"""Largest SGM penalty: 8 paths of (cost + P2) must fit the solver's 16-bit sums."""
+
+MAX_CENSUS_BITS = 63
+"""Comparisons a census string holds (the centre pixel is not compared)."""
+
 
 def param(default, help: str, *, min=None, max=None, choices=None):  # noqa: A002
     """A schema field: default, help text and optional range or choices."""
@@ -49,8 +55,31 @@ def parse_disp_range(text: str) -> tuple[int, int] | None:
     return lo, hi
 
 
+class _Section:
+    """Checks shared by the schema sections: ranges and choices, then cross-field rules."""
+
+    def validate(self, source: str = "parameter") -> None:
+        """Raise :class:`InputError` naming the first parameter out of its range."""
+        for f in dataclasses.fields(self):
+            value = getattr(self, f.name)
+            meta = f.metadata
+            where = f"{source}: {f.name}={value!r}"
+            if meta["choices"] is not None and value not in meta["choices"]:
+                raise InputError(f"{where} is not one of {list(meta['choices'])}")
+            if isinstance(value, float) and math.isnan(value):
+                raise InputError(f"{where} is not a number")
+            if meta["min"] is not None and value < meta["min"]:
+                raise InputError(f"{where} is below the minimum {meta['min']}")
+            if meta["max"] is not None and value > meta["max"]:
+                raise InputError(f"{where} is above the maximum {meta['max']}")
+        self._cross_check(source)
+
+    def _cross_check(self, source: str) -> None:
+        """Rules between fields of one section (none by default)."""
+
+
 @dataclass
-class DisparityParams:
+class DisparityParams(_Section):
     """Matching cost, solver and refinement."""
 
     method: str = param("sgm", "solver: semi-global matching, loopy belief propagation or "
@@ -58,13 +87,14 @@ class DisparityParams:
     cost: str = param("census", "matching cost: census + Hamming, or absolute difference of "
                       "intensity and gradient", choices=("census", "ad_gradient"))
     census_width: int = param(7, "matching window width (census window, or the box of "
-                              "ad_gradient), odd, pixels", min=1, max=9)
+                              "ad_gradient), odd, pixels; a census window holds at most "
+                              f"{MAX_CENSUS_BITS + 1} pixels", min=1, max=9)
     census_height: int = param(5, "matching window height, odd, pixels", min=1, max=9)
     disp_range: str = param(
         "auto", "disparity search range MIN:MAX (MAX exclusive) or 'auto' from sparse matches"
     )
     p1: int = param(8, "SGM penalty for a disparity step of one (cost units)", min=0, max=500)
-    p2: int = param(96, "SGM penalty for larger steps (cost units)", min=1, max=1000)
+    p2: int = param(96, "SGM penalty for larger steps (cost units)", min=1, max=MAX_P2)
     p2_gradient_scale: float = param(
         8.0, "intensity difference (grey levels) that halves P2; 0 keeps P2 fixed", min=0.0
     )
@@ -98,9 +128,22 @@ class DisparityParams:
     min_confidence: float = param(0.0, "reject disparities below this confidence",
                                   min=0.0, max=1.0)
 
+    def _cross_check(self, source: str) -> None:
+        parse_disp_range(self.disp_range)
+        w, h = self.census_width, self.census_height
+        if w % 2 == 0 or h % 2 == 0:
+            raise InputError(f"{source}: census window sides must be odd, got {w}x{h}")
+        if self.cost == "census" and w * h - 1 > MAX_CENSUS_BITS:
+            raise InputError(
+                f"{source}: a {w}x{h} census window makes {w * h - 1} comparisons, more than "
+                f"the {MAX_CENSUS_BITS} a census string holds; use e.g. 9x7 or 7x9"
+            )
+        if self.p1 >= self.p2:
+            raise InputError(f"{source}: p1 ({self.p1}) must be below p2 ({self.p2})")
+
 
 @dataclass
-class CloudParams:
+class CloudParams(_Section):
     """Triangulation and point-cloud filtering."""
 
     sigma_d: float = param(0.25, "disparity standard deviation for sigma_z, pixels", min=0.0)
@@ -114,9 +157,14 @@ class CloudParams:
                                      min=0.1)
     voxel_size: float = param(0.0, "voxel downsampling size, metres; 0 disables", min=0.0)
 
+    def _cross_check(self, source: str) -> None:
+        if self.depth_max > 0 and self.depth_min > self.depth_max:
+            raise InputError(f"{source}: depth_min ({self.depth_min}) is beyond depth_max "
+                             f"({self.depth_max}); 0 as depth_max means no far limit")
+
 
 @dataclass
-class SurfaceParams:
+class SurfaceParams(_Section):
     """Surface reconstruction."""
 
     surface: str = param("grid", "depth-map grid mesh (open surfaces) or screened Poisson",
@@ -130,7 +178,7 @@ class SurfaceParams:
 
 
 @dataclass
-class RepairParams:
+class RepairParams(_Section):
     """Mesh repair and hole filling."""
 
     max_hole_edges: int = param(30, "fill holes with at most this many boundary edges; "
@@ -142,10 +190,23 @@ class RepairParams:
 
 
 @dataclass
-class ExportParams:
+class ExportParams(_Section):
     """Outputs."""
 
-    format: str = param("ply", "comma list of extra exports: ply, obj, glb, las, e57")
+    format: str = param("ply", "comma list of exports: meshes ply, obj, glb; clouds las, e57 "
+                        "(mesh.ply and cloud.ply are always written)")
+
+    @property
+    def formats(self) -> list[str]:
+        """The export names of ``format``, in order, without repeats."""
+        names = [v.strip() for v in self.format.split(",") if v.strip()]
+        return list(dict.fromkeys(names))
+
+    def _cross_check(self, source: str) -> None:
+        known = export_names()
+        for fmt in self.formats:
+            if fmt not in known:
+                raise InputError(f"{source}: format {fmt!r} is not one of {', '.join(known)}")
 
 
 SECTIONS: dict[str, type] = {
@@ -193,29 +254,16 @@ class Params:
     def validate(self, source: str = "parameter") -> None:
         """Raise :class:`InputError` naming the first parameter out of its range."""
         for section in SECTIONS:
-            obj = getattr(self, section)
-            for f in dataclasses.fields(obj):
-                value = getattr(obj, f.name)
-                meta = f.metadata
-                where = f"{source}: {f.name}={value!r}"
-                if meta["choices"] is not None and value not in meta["choices"]:
-                    raise InputError(f"{where} is not one of {list(meta['choices'])}")
-                if meta["min"] is not None and value < meta["min"]:
-                    raise InputError(f"{where} is below the minimum {meta['min']}")
-                if meta["max"] is not None and value > meta["max"]:
-                    raise InputError(f"{where} is above the maximum {meta['max']}")
-                if isinstance(value, float) and math.isnan(value):
-                    raise InputError(f"{where} is not a number")
-        d = self.disparity
-        parse_disp_range(d.disp_range)
-        if d.census_width % 2 == 0 or d.census_height % 2 == 0:
-            raise InputError(f"{source}: census window sides must be odd")
-        if d.p1 >= d.p2:
-            raise InputError(f"{source}: p1 ({d.p1}) must be below p2 ({d.p2})")
-        formats = [v.strip() for v in self.export.format.split(",") if v.strip()]
-        for fmt in formats:
-            if fmt not in ("ply", "obj", "glb", "las", "e57"):
-                raise InputError(f"{source}: format {fmt!r} is not one of ply, obj, glb, las, e57")
+            getattr(self, section).validate(source)
+
+
+def export_names() -> tuple[str, ...]:
+    """The ``format`` choices: the exporters' module names (without importing them)."""
+    try:
+        from stereomesh.io.exporters import names
+    except ImportError:  # the exporter registry has not landed in this tree
+        return ("ply",)
+    return names()
 
 
 def field_owners() -> dict[str, str]:

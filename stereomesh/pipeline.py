@@ -1,390 +1,419 @@
-"""The stages chained: pair in, disparity, cloud, surface, repair, files and report out.
+"""The in-memory core: a stereo pair in; disparity, cloud, mesh and figures out.
 
-Pure stage functions live in ``matching/`` and ``geometry/``; this module
-orders them, times them, collects their figures into the report and does the
-file I/O through ``io/``. Every output is written atomically; when a stage
-fails, the outputs of the stages before it stay on disk and the report is
-written with ``"status": "failed"`` and the failing stage named.
+No file is read or written here. Readers in :mod:`stereomesh.io.inputs` make the
+:class:`StereoPair`; :func:`reconstruct` chains the stages; the front doors
+(:mod:`stereomesh.jobs` for the CLI, the batch runner and the editor's worker)
+write what it returns. Each stage is also callable on its own, on in-memory
+data such as a cloud or mesh the editor sends:
+
+==================  ======================================  ==========================
+stage               function                                result
+==================  ======================================  ==========================
+``disparity``       :func:`disparity_of_pair`               ``DisparityResult``
+``triangulate``     :func:`cloud_from_disparity`            per-pixel ``PointCloud``
+``filter_cloud``    :func:`clean_cloud`, :func:`thin_cloud` cleaned cloud
+``surface``         :func:`surface_from_cloud`              ``TriMesh``
+``repair``          :func:`repair_surface`                  repaired ``TriMesh``
+==================  ======================================  ==========================
+
+Every stage function returns its result and a dict of figures for the report.
+Parameters arrive validated (:class:`~stereomesh.params.Params`); the stage
+functions pass each schema section to the geometry functions by field name,
+so a parameter is named once, in the schema.
 """
 
 from __future__ import annotations
 
-import hashlib
-import json
-import platform
-import resource
-import sys
+import dataclasses
+import inspect
 import time
-import traceback
-from collections.abc import Callable, Sequence
+from collections.abc import Callable
 from dataclasses import dataclass, field
-from importlib import metadata
 from pathlib import Path
 
 import numpy as np
 
-from stereomesh import __version__
 from stereomesh.errors import InputError
 from stereomesh.params import Params
 from stereomesh.rectify import RectifiedRig
 
 Progress = Callable[[str, float], None]
+"""``progress(step, fraction_done)``; it may raise (e.g. ``Cancelled``) to stop a run."""
 
-CAUTION = (
-    "Stereo-derived geometry is an estimate: every point carries a stated depth "
-    "uncertainty (sigma_z). For structural, legal or survey use, defer to licensed "
-    "surveyors and local codes."
-)
+STAGES = ("disparity", "triangulate", "filter_cloud", "surface", "repair")
+"""The stages :func:`reconstruct` runs, in order."""
 
 
 @dataclass
-class PairInput:
-    """A rectified pair ready for the core: images, rig and where they came from."""
+class StereoPair:
+    """A rectified pair ready for the core: images, rig and where they came from.
+
+    Attributes
+    ----------
+    left, right : (H, W, 3) uint8 or uint16 arrays
+        Rectified images, RGB; rows are epipolar lines.
+    rig : RectifiedRig
+        Geometry of the rectified pair (lengths in metres when ``rig.metric``).
+    sources : list of Path
+        Files the pair was read from (images, calibration), for the report.
+    info : dict
+        Figures of reading and rectifying (layout, residuals), for the report.
+    warnings : list of str
+        Things the reader noticed that the user should know.
+    """
 
     left: np.ndarray
     right: np.ndarray
     rig: RectifiedRig
     sources: list[Path] = field(default_factory=list)
+    info: dict = field(default_factory=dict)
+    warnings: list[str] = field(default_factory=list)
+
+    def __post_init__(self) -> None:
+        for name in ("left", "right"):
+            image = np.asarray(getattr(self, name))
+            if image.ndim == 2:
+                image = np.repeat(image[:, :, None], 3, axis=2)
+            if image.ndim != 3 or image.shape[2] != 3:
+                raise InputError(f"{name} image must be (H, W) or (H, W, 3), got {image.shape}")
+            if image.dtype not in (np.uint8, np.uint16):
+                raise InputError(f"{name} image must be uint8 or uint16, got {image.dtype}")
+            setattr(self, name, np.ascontiguousarray(image))
+        if self.left.shape != self.right.shape:
+            raise InputError(
+                f"left {self.left.shape[1]}x{self.left.shape[0]} and right "
+                f"{self.right.shape[1]}x{self.right.shape[0]} images differ in size"
+            )
+        w, h = self.rig.image_size
+        if (w, h) != (0, 0) and (w, h) != (self.left.shape[1], self.left.shape[0]):
+            raise InputError(
+                f"the calibration is for {w}x{h} images but the pair is "
+                f"{self.left.shape[1]}x{self.left.shape[0]}"
+            )
+
+    @property
+    def colour(self) -> np.ndarray:
+        """The left image as 8-bit RGB, for point and vertex colours."""
+        from stereomesh.io.images import to_uint8
+
+        return to_uint8(self.left)
 
 
-def _sha256(path: Path) -> str:
-    h = hashlib.sha256()
-    with open(path, "rb") as fh:
-        for block in iter(lambda: fh.read(1 << 20), b""):
-            h.update(block)
-    return h.hexdigest()
+@dataclass
+class Reconstruction:
+    """What :func:`reconstruct` returns: every stage's result and figures.
 
-
-def peak_memory_mb() -> float:
-    """Peak resident memory of this process so far, MB."""
-    usage = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
-    return usage / (1024.0 * 1024.0) if sys.platform == "darwin" else usage / 1024.0
-
-
-def software_versions() -> dict[str, str]:
-    out = {"stereomesh": __version__, "python": platform.python_version()}
-    for dist in ("numpy", "scipy", "numba", "opencv-python-headless", "open3d-cpu", "open3d",
-                 "pymeshlab", "pillow", "pyvista"):
-        try:
-            out[dist] = metadata.version(dist)
-        except metadata.PackageNotFoundError:
-            pass
-    return out
-
-
-def load_pair(inputs: Sequence[str | Path], calib: str | Path | None) -> PairInput:
-    """Read the input files and the calibration, checking sizes against each other."""
-    from stereomesh.io.calibration import check_image_size, read_calibration
-    from stereomesh.io.images import read_pair
-
-    paths = [Path(p) for p in inputs]
-    if len(paths) != 2:
-        raise InputError(
-            "give two image files (LEFT RIGHT); single MPO and side-by-side inputs "
-            "are not supported yet"
-        )
-    if calib is None:
-        raise InputError("--calib CALIB.json is required (the uncalibrated path is not built yet)")
-    left, right = read_pair(paths[0], paths[1])
-    rig = read_calibration(calib)
-    check_image_size(rig, left.shape[1], left.shape[0], calib, paths[0])
-    return PairInput(left, right, rig, [*paths, Path(calib)])
-
-
-def load_pair_while_warming(inputs, calib, params: Params) -> tuple[PairInput, list[dict]]:
-    """:func:`load_pair` and the input hashes, while the disparity kernels load.
-
-    Loading compiled kernels takes the interpreter for a few tenths of a second
-    in a fresh process; image decoding and hashing do not need it, so they run
-    in a thread meanwhile. Errors of either surface here, as they would alone.
+    Attributes
+    ----------
+    pair : StereoPair
+    params : Params
+    disparity : DisparityResult or None
+        Disparity, confidence and occlusion classes on the left rectified grid.
+    cloud : PointCloud or None
+        The cleaned (and, with ``voxel_size``, thinned) coloured cloud, metres.
+    mesh : TriMesh or None
+        The repaired surface.
+    figures : dict
+        ``{stage: {"seconds": ..., figures...}}`` in the order the stages ran.
+    warnings : list of str
     """
-    from concurrent.futures import ThreadPoolExecutor
 
-    from stereomesh.matching.disparity import warm_up
+    pair: StereoPair
+    params: Params
+    disparity: object | None = None
+    cloud: object | None = None
+    mesh: object | None = None
+    figures: dict = field(default_factory=dict)
+    warnings: list[str] = field(default_factory=list)
 
-    def read():
-        pair = load_pair(inputs, calib)
-        return pair, _input_records(pair.sources)
-
-    with ThreadPoolExecutor(1) as pool:
-        future = pool.submit(read)
-        try:
-            warm_up(params.disparity)
-        finally:
-            pair, records = future.result()
-    return pair, records
+    @property
+    def scale(self) -> str:
+        """``"metric"`` when the rig's baseline is known in metres, else ``"unscaled"``."""
+        return "metric" if self.pair.rig.metric else "unscaled"
 
 
-def _input_records(sources: Sequence[Path]) -> list[dict]:
-    return [{"path": str(p), "sha256": _sha256(p)} for p in sources if p.is_file()]
+class StageFailed(Exception):
+    """A stage of :func:`reconstruct` raised; ``partial`` holds the stages before it.
+
+    The original exception is ``__cause__`` (an ``InputError`` for bad input,
+    ``Cancelled`` when the progress callback stopped the run).
+    """
+
+    def __init__(self, stage: str, partial: Reconstruction):
+        super().__init__(f"stage {stage} failed")
+        self.stage = stage
+        self.partial = partial
 
 
-class Report:
-    """Collects the provenance record as the stages run."""
+def section_arguments(section, function: Callable) -> dict:
+    """The fields of a schema ``section`` that ``function`` takes as keywords.
 
-    def __init__(self, command: str, params: Params, sources: Sequence[Path],
-                 inputs: list[dict] | None = None):
-        self.data: dict = {
-            "version": __version__,
-            "command": command,
-            "status": "running",
-            "inputs": _input_records(sources) if inputs is None else inputs,
-            "params": params.to_dict(),
-            "scale": "unscaled",
-            "stages": {},
-            "outputs": {},
-            "peak_memory_mb": 0.0,
-            "warnings": [],
-            "software": software_versions(),
-            "caution": CAUTION,
-        }
-        self._t0 = time.perf_counter()
+    Geometry functions name their options as the schema does, so the core
+    passes them through without a hand-written mapping.
 
-    def stage(self, name: str, seconds: float, **figures) -> None:
-        self.data["stages"][name] = {"seconds": round(seconds, 4), **figures}
-
-    def warn(self, message: str) -> None:
-        self.data["warnings"].append(message)
-
-    def output(self, key: str, path: Path) -> None:
-        self.data["outputs"][key] = str(path)
-
-    def finish(self, path: Path, status: str = "ok") -> dict:
-        from stereomesh.io.atomic import write_text_atomic
-
-        self.data["status"] = status
-        self.data["total_seconds"] = round(time.perf_counter() - self._t0, 3)
-        self.data["peak_memory_mb"] = round(peak_memory_mb(), 1)
-        write_text_atomic(path, json.dumps(_jsonable(self.data), indent=2) + "\n")
-        return self.data
+    Examples
+    --------
+    >>> from stereomesh.params import SurfaceParams
+    >>> def f(x, *, grid_step=1, max_depth_jump=0.1): ...
+    >>> sorted(section_arguments(SurfaceParams(), f))
+    ['grid_step', 'max_depth_jump']
+    """
+    names = inspect.signature(function).parameters
+    return {f.name: getattr(section, f.name) for f in dataclasses.fields(section)
+            if f.name in names}
 
 
-def _jsonable(obj):
-    if isinstance(obj, dict):
-        return {str(k): _jsonable(v) for k, v in obj.items()}
-    if isinstance(obj, list | tuple):
-        return [_jsonable(v) for v in obj]
-    if isinstance(obj, np.generic):
-        obj = obj.item()
-    if isinstance(obj, float) and not np.isfinite(obj):
-        return None
-    if isinstance(obj, Path):
-        return str(obj)
-    return obj
+def _nothing(step: str, fraction: float) -> None:
+    return None
 
 
-def write_disparity_outputs(out_dir: Path, result, report: Report) -> None:
-    """``disparity.pfm``, ``confidence.pfm`` and ``occlusion.png`` on the left grid."""
-    from stereomesh.io.images import write_png
-    from stereomesh.io.pfm import write_pfm
+def disparity_of_pair(pair: StereoPair, params: Params, workspace=None,
+                      progress: Progress | None = None):
+    """The disparity engine on a rectified pair (see :func:`compute_disparity`).
 
-    write_pfm(out_dir / "disparity.pfm", result.disparity)
-    write_pfm(out_dir / "confidence.pfm", result.confidence)
-    write_png(out_dir / "occlusion.png", result.classes)
-    for name in ("disparity.pfm", "confidence.pfm", "occlusion.png"):
-        report.output(name.split(".")[0], out_dir / name)
-
-
-def disparity_stage(pair: PairInput, params: Params, report: Report, progress: Progress):
-    """Run the disparity engine and record its figures (and the result's energy)."""
+    Returns
+    -------
+    DisparityResult, dict
+        The maps and the engine's figures.
+    """
     from stereomesh.matching.disparity import compute_disparity
 
-    t = time.perf_counter()
-    result = compute_disparity(pair.left, pair.right, params.disparity, progress)
-    figs = dict(result.figures)
-    report.stage("disparity", time.perf_counter() - t, **figs)
-    return result
+    result = compute_disparity(pair.left, pair.right, params.disparity, progress, workspace)
+    return result, dict(result.figures)
 
 
-def run_disparity(
-    inputs: Sequence[str | Path],
-    calib: str | Path | None,
-    out_dir: str | Path,
-    params: Params,
-    progress: Progress | None = None,
-    command: str = "disparity",
-    previews: bool = False,
-) -> dict:
-    """The ``stereomesh disparity`` job: disparity outputs, the report, optional previews."""
-    progress = progress or (lambda step, frac: None)
-    out_dir = Path(out_dir)
-    pair, records = load_pair_while_warming(inputs, calib, params)
-    report = Report(command, params, pair.sources, records)
-    report.data["scale"] = "metric" if pair.rig.metric else "unscaled"
-    out_dir.mkdir(parents=True, exist_ok=True)
-    try:
-        result = disparity_stage(pair, params, report, progress)
-        write_disparity_outputs(out_dir, result, report)
-        if previews:
-            _disparity_previews(out_dir, pair, result, report)
-    except Exception:
-        report.warn("failed: " + traceback.format_exc(limit=3).strip().splitlines()[-1])
-        report.finish(out_dir / "report.json", status="failed")
-        raise
-    return report.finish(out_dir / "report.json")
+def cloud_from_disparity(pair: StereoPair, disparity, params: Params):
+    """Triangulate every valid disparity into a coloured point of the left camera frame.
+
+    Parameters
+    ----------
+    pair : StereoPair
+    disparity : DisparityResult
+    params : Params
+        ``cloud.sigma_d`` gives the disparity uncertainty behind ``sigma_z``.
+
+    Returns
+    -------
+    PointCloud, dict
+        One point per valid pixel (with ``pixels`` set) and its figures.
+    """
+    from stereomesh.geometry.triangulate import triangulate
+
+    cloud = triangulate(disparity.disparity, pair.rig, pair.colour, disparity.confidence,
+                        sigma_d=params.cloud.sigma_d)
+    figures = {"points": len(cloud)}
+    if len(cloud):
+        figures.update(median_depth=float(np.median(cloud.points[:, 2])),
+                       median_sigma_z=float(np.median(cloud.sigma_z)))
+    return cloud, figures
 
 
-def _disparity_previews(out_dir: Path, pair: PairInput, result, report: Report) -> None:
-    from stereomesh.io.images import to_uint8
+def clean_cloud(cloud, params: Params):
+    """Depth and confidence gates, statistical outlier removal and normals.
 
-    t = time.perf_counter()
-    pdir = out_dir / "previews"
-    try:
-        from stereomesh.io import previews
+    Points keep their pixel of origin, so a grid surface can still be built
+    from what is left (see :func:`surface_from_cloud`); thinning is a separate
+    step (:func:`thin_cloud`).
 
-        previews.write_image_previews(
-            pdir, to_uint8(pair.left), to_uint8(pair.right), result.disparity,
-            result.confidence, result.classes,
-        )
-        report.output("previews", pdir)
-    except Exception as exc:  # previews must never cost the user the results
-        report.warn(f"previews not written: {exc}")
-    report.data["stages"].setdefault("previews", {"seconds": 0.0})
-    report.data["stages"]["previews"]["seconds"] = round(time.perf_counter() - t, 4)
+    Parameters
+    ----------
+    cloud : PointCloud
+        Points in the left camera frame (an edited cloud from the editor too).
+    params : Params
+        The ``cloud`` section.
 
-
-def run_pipeline(
-    inputs: Sequence[str | Path],
-    calib: str | Path | None,
-    out_dir: str | Path,
-    params: Params,
-    progress: Progress | None = None,
-    command: str = "run",
-) -> dict:
-    """The ``stereomesh run`` job: disparity, cloud, mesh, exports, previews and report.
-
-    Returns the report dictionary (also written to ``out_dir/report.json``).
+    Returns
+    -------
+    PointCloud, dict
+        The kept points with camera-facing normals, and the point counts after
+        each step.
     """
     from stereomesh.geometry.filters import filter_cloud
-    from stereomesh.geometry.repair import repair_mesh
-    from stereomesh.geometry.triangulate import triangulate
-    from stereomesh.io.images import to_uint8
-    from stereomesh.io.ply import write_cloud_ply, write_mesh_ply
 
-    progress = progress or (lambda step, frac: None)
-    out_dir = Path(out_dir)
-    pair = load_pair(inputs, calib)
-    report = Report(command, params, pair.sources)
-    rig = pair.rig
-    report.data["scale"] = "metric" if rig.metric else "unscaled"
-    if not rig.metric:
-        report.warn("baseline is nominal: lengths are unscaled, not metres")
-    out_dir.mkdir(parents=True, exist_ok=True)
-    stage = "disparity"
-    try:
-        def sub(lo, hi):
-            return lambda step, frac: progress(step, lo + (hi - lo) * frac)
-
-        result = disparity_stage(pair, params, report, sub(0.0, 0.5))
-        write_disparity_outputs(out_dir, result, report)
-        _disparity_previews(out_dir, pair, result, report)
-        colour = to_uint8(pair.left)
-        cp = params.cloud
-
-        stage = "triangulate"
-        progress("triangulate", 0.55)
-        t = time.perf_counter()
-        cloud = triangulate(result.disparity, rig, colour, result.confidence, sigma_d=cp.sigma_d)
-        report.stage("triangulate", time.perf_counter() - t, points=len(cloud),
-                     median_depth=float(np.median(cloud.points[:, 2])) if len(cloud) else None,
-                     median_sigma_z=float(np.median(cloud.sigma_z)) if len(cloud) else None)
-
-        stage = "filter_cloud"
-        progress("filter cloud", 0.6)
-        t = time.perf_counter()
-        depth_max = cp.depth_max if cp.depth_max > 0 else np.inf
-        cloud, counts = filter_cloud(
-            cloud,
-            depth_range=(cp.depth_min, depth_max),
-            min_confidence=cp.cloud_min_confidence,
-            statistical_neighbors=cp.outlier_neighbors,
-            statistical_std_ratio=cp.outlier_std_ratio,
-            voxel_size=cp.voxel_size,
-        )
-        report.stage("filter_cloud", time.perf_counter() - t, points=counts)
-        write_cloud_ply(out_dir / "cloud.ply", cloud)
-        report.output("cloud", out_dir / "cloud.ply")
-
-        stage = "surface"
-        progress("surface", 0.7)
-        t = time.perf_counter()
-        sp = params.surface
-        keep = _kept_pixels(result, cloud, params)
-        if sp.surface == "grid":
-            from stereomesh.geometry.surface import depth_grid_mesh
-
-            disp_kept = np.where(keep, result.disparity, np.nan).astype(np.float32)
-            mesh = depth_grid_mesh(disp_kept, rig, colour, result.confidence,
-                                   sigma_d=cp.sigma_d, max_depth_jump=sp.max_depth_jump,
-                                   step=sp.grid_step)
-        else:
-            from stereomesh.geometry.surface import poisson_mesh
-
-            mesh = poisson_mesh(cloud, depth=sp.poisson_depth,
-                                density_quantile=sp.density_quantile)
-        report.stage("surface", time.perf_counter() - t, method=sp.surface,
-                     vertices=len(mesh.vertices), faces=len(mesh.faces))
-
-        stage = "repair"
-        progress("repair", 0.85)
-        t = time.perf_counter()
-        rp = params.repair
-        mesh, rfig = repair_mesh(
-            mesh,
-            max_hole_edges=rp.max_hole_edges,
-            min_component_fraction=rp.min_component_fraction,
-            smooth_iterations=rp.smooth_iterations,
-            target_faces=rp.target_faces or None,
-        )
-        report.stage("repair", time.perf_counter() - t, **rfig)
-
-        stage = "export"
-        progress("export", 0.95)
-        t = time.perf_counter()
-        write_mesh_ply(out_dir / "mesh.ply", mesh)
-        report.output("mesh", out_dir / "mesh.ply")
-        _extra_exports(out_dir, mesh, cloud, params, report)
-        _mesh_preview(out_dir, mesh, report)
-        report.stage("export", time.perf_counter() - t, faces=len(mesh.faces),
-                     vertices=len(mesh.vertices))
-    except Exception as exc:
-        if not isinstance(exc, InputError):
-            report.warn(f"stage {stage} failed: {type(exc).__name__}: {exc}")
-        report.data["failed_stage"] = stage
-        report.finish(out_dir / "report.json", status="failed")
-        raise
-    progress("done", 1.0)
-    return report.finish(out_dir / "report.json")
+    options = section_arguments(params.cloud, filter_cloud)
+    options["voxel_size"] = 0.0
+    cleaned, counts = filter_cloud(cloud, **options)
+    return cleaned, {"points": counts}
 
 
-def _kept_pixels(result, cloud, params: Params) -> np.ndarray:
-    """Pixels whose point survived the cloud filters (so the grid mesh honours them).
+def thin_cloud(cloud, params: Params):
+    """Voxel averaging of a cleaned cloud to ``voxel_size`` (a no-op at 0).
 
-    After voxel downsampling points no longer stand for single pixels; the grid
-    mesh then keeps every pixel that passed the per-pixel filters.
+    Returns
+    -------
+    PointCloud, dict
     """
-    disparity = result.disparity
-    if params.cloud.voxel_size > 0 or cloud.pixels is None:
-        return np.isfinite(disparity) & (result.confidence >= params.cloud.cloud_min_confidence)
-    keep = np.zeros(disparity.shape, bool)
-    if len(cloud):
-        keep[cloud.pixels[:, 1], cloud.pixels[:, 0]] = True
-    return keep
+    from stereomesh.geometry.filters import voxel_average
+
+    size = params.cloud.voxel_size
+    if size <= 0:
+        return cloud, {}
+    thinned = voxel_average(cloud, size)
+    return thinned, {"voxel_size": size, "points_after_voxel": len(thinned)}
 
 
-def _extra_exports(out_dir: Path, mesh, cloud, params: Params, report: Report) -> None:
-    formats = [f.strip() for f in params.export.format.split(",") if f.strip()]
-    for fmt in formats:
-        if fmt == "ply":
-            continue
-        report.warn(f"export format {fmt!r} is not available yet; skipped")
+def _maps_from_cloud(cloud, rig: RectifiedRig):
+    """Disparity, colour, confidence and sigma_d maps holding the cloud's points."""
+    w, h = rig.image_size
+    cols, rows = cloud.pixels[:, 0], cloud.pixels[:, 1]
+    if (w, h) == (0, 0):
+        w, h = int(cols.max()) + 1, int(rows.max()) + 1
+    if cols.min() < 0 or rows.min() < 0 or cols.max() >= w or rows.max() >= h:
+        raise InputError(f"the cloud's pixel positions fall outside the {w}x{h} image of its rig")
+    fb = rig.focal_px * rig.baseline
+    z = cloud.points[:, 2]
+    disparity = np.full((h, w), np.nan, np.float32)
+    disparity[rows, cols] = fb / z - rig.doffs
+    image = np.zeros((h, w, 3), np.uint8)
+    image[rows, cols] = cloud.colors
+    confidence = np.zeros((h, w), np.float32)
+    confidence[rows, cols] = cloud.confidence
+    sigma_d = np.zeros((h, w), np.float32)
+    sigma_d[rows, cols] = cloud.sigma_z * fb / (z * z)
+    return disparity, image, confidence, sigma_d
 
 
-def _mesh_preview(out_dir: Path, mesh, report: Report) -> None:
-    try:
-        from stereomesh.io.previews import render_mesh_png
+def surface_from_cloud(cloud, params: Params, rig: RectifiedRig | None = None):
+    """Reconstruct a surface: a depth-map grid mesh or screened Poisson.
 
-        path = out_dir / "previews" / "mesh.png"
-        render_mesh_png(path, mesh.vertices, mesh.faces, mesh.colors)
-    except Exception as exc:  # a missing preview must not cost the user the mesh
-        report.warn(f"mesh preview not rendered: {exc}")
+    Parameters
+    ----------
+    cloud : PointCloud
+        For ``surface = "grid"`` the points must carry ``pixels`` (as
+        :func:`cloud_from_disparity` makes them) and ``rig`` must be given: the
+        mesh joins neighbouring pixels that survived the filters. Poisson needs
+        normals (:func:`clean_cloud` estimates them).
+    params : Params
+        The ``surface`` section.
+    rig : RectifiedRig, optional
+
+    Returns
+    -------
+    TriMesh, dict
+    """
+    sp = params.surface
+    if len(cloud) == 0:
+        raise InputError("no points are left to mesh: the filters removed every point; "
+                         "lower cloud_min_confidence or widen depth_min/depth_max")
+    if sp.surface == "grid":
+        from stereomesh.geometry.surface import depth_grid_mesh
+
+        if cloud.pixels is None or rig is None:
+            raise InputError("a grid surface needs a cloud with the pixel of each point and "
+                             "its calibration; use surface = 'poisson' for other clouds")
+        disparity, image, confidence, sigma_d = _maps_from_cloud(cloud, rig)
+        mesh = depth_grid_mesh(disparity, rig, image, confidence, sigma_d=sigma_d,
+                               **section_arguments(sp, depth_grid_mesh))
+    else:
+        from stereomesh.geometry.surface import poisson_mesh
+
+        if cloud.normals is None:
+            from stereomesh.geometry.filters import estimate_normals
+
+            cloud = estimate_normals(cloud)
+        mesh = poisson_mesh(cloud, **section_arguments(sp, poisson_mesh))
+    return mesh, {"method": sp.surface, "vertices": len(mesh.vertices),
+                  "faces": len(mesh.faces)}
+
+
+def repair_surface(mesh, params: Params):
+    """Remove small parts and defects, close small holes only, smooth and decimate.
+
+    Returns
+    -------
+    TriMesh, dict
+        The repaired mesh (``filled = 1`` on vertices hole filling made) and
+        the repair figures (holes filled, boundary loops before and after...).
+    """
+    from stereomesh.geometry.repair import repair_mesh
+
+    if len(mesh.faces) == 0:
+        raise InputError("the surface has no faces to repair; check the surface parameters")
+    return repair_mesh(mesh, **section_arguments(params.repair, repair_mesh))
+
+
+def reconstruct(
+    pair: StereoPair,
+    params: Params | None = None,
+    *,
+    workspace=None,
+    progress: Progress | None = None,
+    stop_after: str = "repair",
+) -> Reconstruction:
+    """The whole pipeline in memory: disparity, cloud, cleaning, surface, repair.
+
+    Parameters
+    ----------
+    pair : StereoPair
+        A rectified pair (from :func:`stereomesh.io.inputs.read_stereo_input` or
+        built from arrays).
+    params : Params, optional
+        Validated parameters; the defaults when omitted.
+    workspace : stereomesh.matching.sgm.Workspace, optional
+        Solver work memory reused across calls (many pairs in one process).
+    progress : callable, optional
+        ``progress(step, fraction)``; an exception it raises stops the run.
+    stop_after : str
+        Last stage to run, one of :data:`STAGES`.
+
+    Returns
+    -------
+    Reconstruction
+
+    Raises
+    ------
+    StageFailed
+        When a stage raises; ``partial`` keeps the results of the stages before.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from stereomesh.rectify import RectifiedRig
+    >>> rng = np.random.default_rng(0)
+    >>> right = (rng.random((48, 96, 3)) * 255).astype(np.uint8)
+    >>> pair = StereoPair(np.roll(right, 8, axis=1), right,
+    ...                   RectifiedRig(focal_px=100.0, cx=48.0, cy=24.0, baseline=0.1))
+    >>> params = Params().with_overrides({"disp_range": "0:16"})
+    >>> out = reconstruct(pair, params, stop_after="triangulate")
+    >>> round(float(np.median(out.cloud.points[:, 2])), 2)   # Z = f B / d = 100 * 0.1 / 8
+    1.25
+    """
+    if stop_after not in STAGES:
+        raise ValueError(f"stop_after must be one of {STAGES}, got {stop_after!r}")
+    params = params or Params()
+    progress = progress or _nothing
+    result = Reconstruction(pair, params, warnings=list(pair.warnings))
+    if not pair.rig.metric:
+        result.warnings.append("baseline is nominal: lengths are unscaled, not metres")
+    last = STAGES.index(stop_after)
+    plan = [("disparity", 0.0, 0.5), ("triangulate", 0.5, 0.55), ("filter_cloud", 0.55, 0.7),
+            ("surface", 0.7, 0.85), ("repair", 0.85, 1.0)]
+    per_pixel = None
+    for stage, lo, hi in plan[: last + 1]:
+        def sub(step, frac, lo=lo, hi=hi):
+            progress(step, lo + (hi - lo) * frac)
+
+        progress(stage.replace("_", " "), lo)
+        t = time.perf_counter()
+        try:
+            if stage == "disparity":
+                result.disparity, figs = disparity_of_pair(pair, params, workspace, sub)
+                result.warnings.extend(result.disparity.warnings)
+            elif stage == "triangulate":
+                result.cloud, figs = cloud_from_disparity(pair, result.disparity, params)
+            elif stage == "filter_cloud":
+                per_pixel, figs = clean_cloud(result.cloud, params)
+                result.cloud, more = thin_cloud(per_pixel, params)
+                figs.update(more)
+            elif stage == "surface":
+                # The grid joins pixels, so it is built from the per-pixel cloud
+                # even when the exported cloud is thinned.
+                source = per_pixel if params.surface.surface == "grid" else result.cloud
+                result.mesh, figs = surface_from_cloud(source, params, pair.rig)
+            else:
+                result.mesh, figs = repair_surface(result.mesh, params)
+        except Exception as exc:
+            raise StageFailed(stage, result) from exc
+        result.figures[stage] = {"seconds": round(time.perf_counter() - t, 4), **figs}
+    progress("done", 1.0)
+    return result

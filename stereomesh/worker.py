@@ -36,12 +36,18 @@ import sys
 import threading
 import time
 import traceback
-from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
 
 from stereomesh import __version__
 from stereomesh.errors import InputError
+from stereomesh.io.inputs import read_stereo_input
+from stereomesh.pipeline import (
+    StageFailed,
+    clean_cloud,
+    reconstruct,
+    repair_surface,
+    surface_from_cloud,
+)
 
 try:  # the in-memory core brings its own; until then the worker defines it
     from stereomesh.errors import Cancelled
@@ -55,151 +61,6 @@ PROTOCOL = 1
 
 ACTIONS = ("mesh_from_pair", "disparity", "cloud_from_pair", "clean_cloud",
            "surface_from_cloud", "fill_holes", "schema", "shutdown")
-
-
-# --------------------------------------------------------------------------------------
-# Adapter over today's core. The in-memory core (``reconstruct``, ``clean_cloud``,
-# ``surface_from_cloud``, ``repair_surface`` in pipeline.py, ``read_stereo_input`` in
-# io/inputs.py) replaces everything in this section once it lands.
-# --------------------------------------------------------------------------------------
-
-STAGES = ("disparity", "triangulate", "filter_cloud", "surface", "repair")
-
-
-class StageFailed(Exception):
-    """A stage raised; ``stage`` names it and ``partial`` holds what was done."""
-
-    def __init__(self, stage: str, partial):
-        super().__init__(f"stage {stage} failed")
-        self.stage = stage
-        self.partial = partial
-
-
-@dataclass
-class Reconstruction:
-    """What :func:`reconstruct` computed, up to the stage it stopped after."""
-
-    pair: Any
-    disparity: Any = None
-    cloud: Any = None
-    mesh: Any = None
-    figures: dict = field(default_factory=dict)
-    warnings: list = field(default_factory=list)
-    scale: str = "metric"
-
-
-def read_stereo_input(inputs, calib, layout: str = "pair", swap: bool = False):
-    """Read a pair and its calibration (adapter over ``pipeline.load_pair``)."""
-    from stereomesh.pipeline import load_pair
-
-    if layout != "pair" or swap:
-        raise InputError(f"{inputs[0]}: layout {layout!r} is not supported yet; give two "
-                         "image files (left and right)")
-    return load_pair([Path(p) for p in inputs], calib)
-
-
-def clean_cloud(cloud, params):
-    """Depth, confidence and statistical outlier filters, normals (Open3D)."""
-    import numpy as np
-
-    from stereomesh.geometry.filters import filter_cloud
-
-    cp = params.cloud
-    depth_max = cp.depth_max if cp.depth_max > 0 else np.inf
-    out, counts = filter_cloud(
-        cloud,
-        depth_range=(cp.depth_min, depth_max),
-        min_confidence=cp.cloud_min_confidence,
-        statistical_neighbors=cp.outlier_neighbors,
-        statistical_std_ratio=cp.outlier_std_ratio,
-        voxel_size=cp.voxel_size,
-    )
-    return out, {"points": counts}
-
-
-def surface_from_cloud(cloud, params, rig=None):
-    """A grid mesh over the cloud's pixels when it has them and a rig, else Poisson."""
-    import numpy as np
-
-    sp = params.surface
-    if sp.surface == "grid" and cloud.pixels is not None and rig is not None and len(cloud):
-        from stereomesh.geometry.surface import depth_grid_mesh
-
-        w, h = rig.image_size
-        col, row = cloud.pixels[:, 0], cloud.pixels[:, 1]
-        inside = (col >= 0) & (col < w) & (row >= 0) & (row < h) & (cloud.points[:, 2] > 0)
-        col, row = col[inside], row[inside]
-        disp = np.full((h, w), np.nan, np.float32)
-        disp[row, col] = rig.focal_px * rig.baseline / cloud.points[inside, 2] - rig.doffs
-        image = np.zeros((h, w, 3), np.uint8)
-        image[row, col] = cloud.colors[inside]
-        conf = np.zeros((h, w), np.float32)
-        conf[row, col] = cloud.confidence[inside]
-        mesh = depth_grid_mesh(disp, rig, image, conf, sigma_d=params.cloud.sigma_d,
-                               max_depth_jump=sp.max_depth_jump, step=sp.grid_step)
-        method = "grid"
-    else:
-        from stereomesh.geometry.surface import poisson_mesh
-
-        if cloud.normals is None or not np.any(cloud.normals):
-            from stereomesh.geometry.filters import estimate_normals
-
-            cloud = estimate_normals(cloud)
-        mesh = poisson_mesh(cloud, depth=sp.poisson_depth, density_quantile=sp.density_quantile)
-        method = "poisson"
-    return mesh, {"method": method, "vertices": len(mesh.vertices), "faces": len(mesh.faces)}
-
-
-def repair_surface(mesh, params):
-    """Small components, non-manifold elements, holes up to a size (PyMeshLab)."""
-    from stereomesh.geometry.repair import repair_mesh
-
-    rp = params.repair
-    return repair_mesh(mesh, max_hole_edges=rp.max_hole_edges,
-                       min_component_fraction=rp.min_component_fraction,
-                       smooth_iterations=rp.smooth_iterations,
-                       target_faces=rp.target_faces or None)
-
-
-def reconstruct(pair, params, *, workspace=None, progress=None, stop_after="repair"):
-    """The stages on an in-memory pair, up to ``stop_after`` (adapter)."""
-    from stereomesh.geometry.triangulate import triangulate
-    from stereomesh.io.images import to_uint8
-    from stereomesh.matching.disparity import compute_disparity
-
-    progress = progress or (lambda step, frac: None)
-    last = STAGES.index(stop_after)
-    rec = Reconstruction(pair, scale="metric" if pair.rig.metric else "unscaled")
-    if not pair.rig.metric:
-        rec.warnings.append("baseline is nominal: lengths are unscaled, not metres")
-    stage = "disparity"
-    try:
-        t = time.perf_counter()
-        rec.disparity = compute_disparity(
-            pair.left, pair.right, params.disparity,
-            lambda step, frac: progress(step, 0.6 * frac), workspace=workspace)
-        rec.figures["disparity"] = {"seconds": time.perf_counter() - t,
-                                    **rec.disparity.figures}
-        for stage, frac in zip(STAGES[1:last + 1], (0.62, 0.7, 0.8, 0.9), strict=False):
-            progress(stage.replace("_", " "), frac)
-            t = time.perf_counter()
-            if stage == "triangulate":
-                rec.cloud = triangulate(rec.disparity.disparity, pair.rig, to_uint8(pair.left),
-                                        rec.disparity.confidence, sigma_d=params.cloud.sigma_d)
-                figs = {"points": len(rec.cloud)}
-            elif stage == "filter_cloud":
-                rec.cloud, figs = clean_cloud(rec.cloud, params)
-            elif stage == "surface":
-                rec.mesh, figs = surface_from_cloud(rec.cloud, params, pair.rig)
-            else:
-                rec.mesh, figs = repair_surface(rec.mesh, params)
-            rec.figures[stage] = {"seconds": time.perf_counter() - t, **figs}
-    except (Cancelled, InputError):
-        raise
-    except Exception as exc:
-        raise StageFailed(stage, rec) from exc
-    progress("done", 1.0)
-    return rec
 
 
 # --------------------------------------------------------------------------------------
@@ -382,9 +243,17 @@ class Worker:
             self._out.send(type="error", id=rid, kind="input", stage=stage, message=str(exc))
         except StageFailed as exc:
             cause = exc.__cause__
-            traceback.print_exception(cause, file=sys.stderr)
-            self._out.send(type="error", id=rid, kind="internal", stage=exc.stage,
-                           message=f"stage {exc.stage} failed: {type(cause).__name__}: {cause}")
+            if isinstance(cause, Cancelled):
+                self._out.send(type="error", id=rid, kind="cancelled", stage=exc.stage,
+                               message="cancelled")
+            elif isinstance(cause, InputError):
+                self._out.send(type="error", id=rid, kind="input", stage=exc.stage,
+                               message=str(cause))
+            else:
+                traceback.print_exception(cause, file=sys.stderr)
+                self._out.send(type="error", id=rid, kind="internal", stage=exc.stage,
+                               message=f"stage {exc.stage} failed: {type(cause).__name__}: "
+                               f"{cause}")
         except Exception as exc:
             traceback.print_exc(file=sys.stderr)
             self._out.send(type="error", id=rid, kind="internal", stage=stage,
@@ -443,6 +312,12 @@ class Worker:
                                  swap=bool(args.get("swap", False)))
 
     @staticmethod
+    def _scale(args: dict) -> str:
+        """The scale of geometry sent by the host: unscaled only if its rig says so."""
+        rig = args.get("calib") or {}
+        return "unscaled" if rig.get("units") == "unscaled" else "metric"
+
+    @staticmethod
     def _pair_info(rec) -> dict:
         rig = rec.pair.rig
         return {"rig": rig.to_dict(), "scale": rec.scale,
@@ -458,12 +333,12 @@ class Worker:
 
         out = self._out_dir(args)
         rec = self._run(args, params, progress, "repair")
-        write_mesh_ply(out / "mesh.ply", rec.mesh)
+        write_mesh_ply(out / "mesh.ply", rec.mesh, scale=rec.scale)
         files = {"mesh": str(out / "mesh.ply")}
         if args.get("with_cloud"):
             from stereomesh.io.ply import write_exchange_cloud_ply
 
-            write_exchange_cloud_ply(out / "cloud.ply", rec.cloud)
+            write_exchange_cloud_ply(out / "cloud.ply", rec.cloud, scale=rec.scale)
             files["cloud"] = str(out / "cloud.ply")
         return {"files": files, **self._pair_info(rec)}
 
@@ -494,7 +369,7 @@ class Worker:
         out = self._out_dir(args)
         stop = "filter_cloud" if args.get("clean", True) else "triangulate"
         rec = self._run(args, params, progress, stop)
-        write_exchange_cloud_ply(out / "cloud.ply", rec.cloud)
+        write_exchange_cloud_ply(out / "cloud.ply", rec.cloud, scale=rec.scale)
         return {"files": {"cloud": str(out / "cloud.ply")}, **self._pair_info(rec)}
 
     def _do_clean_cloud(self, args, params, progress) -> dict:
@@ -504,7 +379,7 @@ class Worker:
         cloud = read_cloud_ply(self._path(args, "cloud"))
         progress("clean cloud", 0.1)
         cloud, figs = clean_cloud(cloud, params)
-        write_exchange_cloud_ply(out / "cloud.ply", cloud)
+        write_exchange_cloud_ply(out / "cloud.ply", cloud, scale=self._scale(args))
         return {"files": {"cloud": str(out / "cloud.ply")},
                 "figures": _plain_figures({"filter_cloud": figs})}
 
@@ -519,14 +394,21 @@ class Worker:
                              "needs at least 3")
         rig = rig_from_dict(args["calib"], "the cloud's calibration") if args.get("calib") \
             else None
+        warnings = []
+        if params.surface.surface == "grid" and (cloud.pixels is None or rig is None):
+            # An object from elsewhere (or stripped of its pixels) can still get a surface.
+            params = params.with_overrides({"surface": "poisson"})
+            warnings.append("the cloud's points carry no pixels (or no calibration): "
+                            "screened Poisson was used instead of the depth grid")
         progress("surface", 0.1)
         mesh, figures = surface_from_cloud(cloud, params, rig)
         figures = {"surface": figures}
         if args.get("repair", True):
             progress("repair", 0.6)
             mesh, figures["repair"] = repair_surface(mesh, params)
-        write_mesh_ply(out / "mesh.ply", mesh)
-        return {"files": {"mesh": str(out / "mesh.ply")}, "figures": _plain_figures(figures)}
+        write_mesh_ply(out / "mesh.ply", mesh, scale=self._scale(args))
+        return {"files": {"mesh": str(out / "mesh.ply")}, "figures": _plain_figures(figures),
+                "warnings": warnings}
 
     def _do_fill_holes(self, args, params, progress) -> dict:
         from stereomesh.io.ply import read_mesh_ply, write_mesh_ply
@@ -538,7 +420,7 @@ class Worker:
             raise InputError(f"{path}: the mesh has no faces; select a mesh, not a point cloud")
         progress("repair", 0.1)
         mesh, figs = repair_surface(mesh, params)
-        write_mesh_ply(out / "mesh.ply", mesh)
+        write_mesh_ply(out / "mesh.ply", mesh, scale=self._scale(args))
         return {"files": {"mesh": str(out / "mesh.ply")},
                 "figures": _plain_figures({"repair": figs})}
 

@@ -14,6 +14,7 @@ FILES = (
     "left.png",
     "right.png",
     "calib.json",
+    "params.toml",
     "gt_disparity.pfm",
     "gt_occlusion.png",
     "gt_mesh.ply",
@@ -175,3 +176,14 @@ def test_command_line_writes_every_file(tmp_path):
         assert (tmp_path / name).is_file(), name
     calib = json.loads((tmp_path / "calib.json").read_text())
     assert calib["image_size"] == [64, 48]
+
+
+def test_demo_parameters_cover_the_true_disparities(demo):
+    # The committed params.toml is what the renderer writes for the scene's truth.
+    from stereomesh.demo_scene import demo_disparity_range
+    from stereomesh.params import load_config, parse_disp_range
+
+    params = load_config(demo["dir"] / "params.toml")
+    assert params.disparity.disp_range == demo_disparity_range(demo["disparity"])
+    lo, hi = parse_disp_range(params.disparity.disp_range)
+    assert lo < np.nanmin(demo["disparity"]) and np.nanmax(demo["disparity"]) < hi - 1

@@ -136,7 +136,7 @@ def test_filter_cloud_removes_planted_outliers_and_orients_normals():
     conf = (np.arange(n) / n).astype(np.float32)
     pixels = np.stack([np.arange(n), np.zeros(n)], 1).astype(np.int32)
     pc = _cloud(pts, confidence=conf, pixels=pixels)
-    out, counts = filter_cloud(pc, statistical_neighbors=20, statistical_std_ratio=2.0)
+    out, counts = filter_cloud(pc, outlier_neighbors=20, outlier_std_ratio=2.0)
     assert counts["input"] == n
     assert set(counts) == {
         "input",
@@ -163,9 +163,10 @@ def test_filter_cloud_depth_confidence_radius_and_voxel_steps():
     pc = _cloud(pts, confidence=conf)
     out, counts = filter_cloud(
         pc,
-        depth_range=(1.7, 3.0),
-        min_confidence=0.5,
-        statistical_neighbors=0,
+        depth_min=1.7,
+        depth_max=3.0,
+        cloud_min_confidence=0.5,
+        outlier_neighbors=0,
         radius=0.05,
         radius_min_points=5,
         voxel_size=0.05,
@@ -280,11 +281,11 @@ def test_depth_grid_mesh_invalid_pixels_and_step():
     # 3 full blocks give 2 triangles each, the block missing a corner gives 1.
     assert len(mesh.faces) == 7 and len(mesh.vertices) == 8
     big = np.full((9, 9), 20.0, np.float32)
-    coarse = depth_grid_mesh(big, RIG, _image(9, 9), step=4)
+    coarse = depth_grid_mesh(big, RIG, _image(9, 9), grid_step=4)
     assert len(coarse.vertices) == 9 and len(coarse.faces) == 8
     np.testing.assert_allclose(coarse.uv[1, 0], 4.5 / 9)
     with pytest.raises(ValueError):
-        depth_grid_mesh(big, RIG, _image(9, 9), step=0)
+        depth_grid_mesh(big, RIG, _image(9, 9), grid_step=0)
 
 
 # ---------------------------------------------------------------- Poisson
@@ -296,7 +297,7 @@ def test_poisson_mesh_reconstructs_plane_near_the_samples():
     pts = np.c_[g, 2.0 + 0.2 * g[:, 1]]
     conf = rng.uniform(0.5, 1.0, len(pts)).astype(np.float32)
     cloud = estimate_normals(_cloud(pts, confidence=conf))
-    mesh = poisson_mesh(cloud, depth=6)
+    mesh = poisson_mesh(cloud, poisson_depth=6)
     assert len(mesh.faces) > 100
     residual = mesh.vertices[:, 2] - (2.0 + 0.2 * mesh.vertices[:, 1])
     assert np.median(np.abs(residual)) < 0.01

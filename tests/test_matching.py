@@ -162,6 +162,8 @@ def test_ad_gradient_cost_matches_formula():
     left = (rng.random((7, 19)) * 255).astype(np.float32)
     right = (rng.random((7, 19)) * 255).astype(np.float32)
     cost = ad_gradient_cost(left, right, -2, 6, (1, 1))
+    # Reference for the gradient: OpenCV's 3x3 Sobel x-derivative (weights 1-2-1 by
+    # -1-0-1, sum of absolute weights 8, hence / 8 for grey levels per pixel).
     gl = cv2.Sobel(left, cv2.CV_32F, 1, 0, ksize=3) / 8
     gr = cv2.Sobel(right, cv2.CV_32F, 1, 0, ksize=3) / 8
     for y, x, k in [(0, 0, 0), (3, 10, 2), (6, 18, 5), (2, 5, 4)]:
@@ -217,3 +219,46 @@ def test_fused_horizontal_paths_equal_two_single_passes():
     fused = np.full(cost.shape, 999, np.uint16)  # overwritten, not added to
     _kernels.aggregate_horizontal_both(cost, gray, 8, 60, 8.0, fused)
     np.testing.assert_array_equal(fused, two)
+
+
+@pytest.mark.parametrize("paths", [4, 8])
+@pytest.mark.parametrize("g_scale", [0.0, 8.0])
+def test_aggregate_costs_equal_the_path_definition_in_every_direction(paths, g_scale):
+    # Reference: the path recurrence of Hirschmüller 2008 (eq. 13) evaluated pixel by
+    # pixel for each direction, with P2 adapted to the intensity step; the sum over the
+    # 4 or 8 directions must be exactly what the vectorised kernels aggregate.
+    from stereomesh.matching.sgm import SGM_DIRECTIONS, path_volume_reference
+
+    rng = np.random.default_rng(21)
+    cost = rng.integers(0, 35, (7, 11, 9)).astype(np.uint8)
+    gray = (rng.random((7, 11)) * 255).astype(np.float32)
+    total = aggregate_costs(cost, gray, p1=8, p2=60, p2_gradient_scale=g_scale, paths=paths)
+    expected = sum(path_volume_reference(cost, gray, r, 8, 60, g_scale)
+                   for r in SGM_DIRECTIONS[:paths])
+    np.testing.assert_array_equal(total, expected)
+
+
+def test_penalty2_reference_hand_worked():
+    # Hand-worked: 96 / (1 + 24 / 8) = 24; a large step never drops to P1 or below.
+    from stereomesh.matching.sgm import penalty2_reference
+
+    assert penalty2_reference(8, 96, 8.0, 100.0, 124.0) == 24
+    assert penalty2_reference(8, 96, 8.0, 0.0, 255.0) == 9
+    assert penalty2_reference(8, 96, 0.0, 0.0, 255.0) == 96
+
+
+def test_ad_gradient_box_window_is_the_mean_of_pixel_costs():
+    # Reference: SciPy's uniform_filter (a box mean) with mode "mirror", which reflects
+    # about the edge pixel like OpenCV's default BORDER_REFLECT_101 used by cv2.blur;
+    # the volume is uint8, so values may differ by the rounding of the mean.
+    from scipy.ndimage import uniform_filter
+
+    from stereomesh.matching.costs import ad_gradient_cost
+
+    rng = np.random.default_rng(13)
+    left = (rng.random((12, 23)) * 255).astype(np.float32)
+    right = np.roll(left, 2, axis=1) + rng.normal(0, 3, left.shape).astype(np.float32)
+    pixel = ad_gradient_cost(left, right, 0, 5, (1, 1)).astype(np.float64)
+    boxed = ad_gradient_cost(left, right, 0, 5, (5, 3))
+    expected = uniform_filter(pixel, size=(3, 5, 1), mode="mirror")
+    assert np.abs(boxed - expected).max() <= 0.5 + 1e-6

@@ -176,10 +176,11 @@ def _with(cloud: PointCloud, **changes) -> PointCloud:
 def filter_cloud(
     cloud: PointCloud,
     *,
-    depth_range: tuple[float, float] = (0.0, math.inf),
-    min_confidence: float = 0.0,
-    statistical_neighbors: int = 20,
-    statistical_std_ratio: float = 2.0,
+    depth_min: float = 0.0,
+    depth_max: float = 0.0,
+    cloud_min_confidence: float = 0.0,
+    outlier_neighbors: int = 20,
+    outlier_std_ratio: float = 2.0,
     radius: float | None = None,
     radius_min_points: int = 0,
     voxel_size: float = 0.0,
@@ -188,10 +189,10 @@ def filter_cloud(
 ) -> tuple[PointCloud, dict]:
     """Clean a triangulated cloud and give it camera-facing normals.
 
-    Steps, in order: keep depths ``z`` in ``depth_range``; keep
-    ``confidence >= min_confidence``; Open3D statistical outlier removal
-    (mean distance to ``statistical_neighbors`` neighbours beyond
-    ``statistical_std_ratio`` standard deviations of the cloud's mean is
+    Steps, in order: keep depths ``z`` in ``[depth_min, depth_max]``; keep
+    ``confidence >= cloud_min_confidence``; Open3D statistical outlier removal
+    (mean distance to ``outlier_neighbors`` neighbours beyond
+    ``outlier_std_ratio`` standard deviations of the cloud's mean is
     removed); optional Open3D radius outlier removal (fewer than
     ``radius_min_points`` neighbours within ``radius``); optional voxel
     averaging; normal estimation oriented toward the camera at the origin.
@@ -200,13 +201,14 @@ def filter_cloud(
     ----------
     cloud : PointCloud
         Points in the left camera frame (camera at the origin, z forward).
-    depth_range : (float, float)
-        Inclusive ``(z_min, z_max)`` in the cloud's length unit.
-    min_confidence : float
+    depth_min, depth_max : float
+        Inclusive depth range kept, in the cloud's length unit; ``depth_max``
+        0 (or infinity) means no far limit.
+    cloud_min_confidence : float
         Lowest confidence kept, in [0, 1].
-    statistical_neighbors : int
+    outlier_neighbors : int
         Neighbours of the statistical test; 0 skips the step.
-    statistical_std_ratio : float
+    outlier_std_ratio : float
         Threshold of the statistical test, in standard deviations.
     radius : float, optional
         Radius of the radius test, length unit; None skips the step.
@@ -235,15 +237,16 @@ def filter_cloud(
     >>> pts = np.c_[rng.random((500, 2)), np.ones(500)]
     >>> pc = PointCloud(pts, np.zeros((500, 3), np.uint8), np.ones(500, np.float32),
     ...                 np.zeros(500, np.float32))
-    >>> out, counts = filter_cloud(pc, depth_range=(0.5, 2.0))
+    >>> out, counts = filter_cloud(pc, depth_min=0.5, depth_max=2.0)
     >>> counts["input"], out.normals.shape[1]
     (500, 3)
     """
     if not isinstance(cloud, PointCloud):
         raise TypeError(f"cloud must be a PointCloud, got {type(cloud).__name__}")
-    z_min, z_max = (float(v) for v in depth_range)
-    if not z_min <= z_max:
-        raise ValueError(f"depth_range must be (min, max) with min <= max, got {depth_range}")
+    z_min = float(depth_min)
+    z_max = math.inf if depth_max in (0, None) else float(depth_max)
+    if not 0 <= z_min <= z_max:
+        raise ValueError(f"need 0 <= depth_min <= depth_max, got {depth_min}, {depth_max}")
     if radius is not None and radius <= 0:
         raise ValueError(f"radius must be positive or None, got {radius}")
     if voxel_size < 0:
@@ -253,11 +256,11 @@ def filter_cloud(
     z = cloud.points[:, 2]
     cloud = cloud.subset((z >= z_min) & (z <= z_max))
     counts["after_depth_range"] = len(cloud)
-    if min_confidence > 0:
-        cloud = cloud.subset(cloud.confidence >= min_confidence)
+    if cloud_min_confidence > 0:
+        cloud = cloud.subset(cloud.confidence >= cloud_min_confidence)
     counts["after_confidence"] = len(cloud)
     cloud = cloud.subset(
-        _statistical_keep(cloud.points, statistical_neighbors, statistical_std_ratio)
+        _statistical_keep(cloud.points, outlier_neighbors, outlier_std_ratio)
     )
     counts["after_statistical"] = len(cloud)
     if radius is not None and radius_min_points > 0:

@@ -8,8 +8,6 @@ gaps are unobserved and stay open. Vertices invented by closing are flagged in
 
 from __future__ import annotations
 
-import math
-
 import numpy as np
 
 from stereomesh.geometry.data import TriMesh
@@ -139,8 +137,14 @@ def _count_components(faces: np.ndarray, n_vertices: int) -> int:
     return int(len(np.unique(labels[np.asarray(faces)[:, 0]])))
 
 
-def _component_thresholds(vertices, faces, fraction: float) -> tuple[int, float]:
-    """Face count and bounding-box diagonal below which a component is small."""
+def _small_component_faces(vertices, faces, fraction: float) -> np.ndarray:
+    """Faces of components with fewer faces, or a smaller bounding-box diagonal, than
+    ``fraction`` of the largest component's (by faces; it is always kept).
+
+    Components are sets of faces joined through shared vertices. PyMeshLab's own
+    component filters join faces through edges instead, so at ``fraction`` 1 they
+    would remove the largest component in pieces; the selection is made here.
+    """
     labels, n = _components(faces, len(vertices))
     flab = labels[faces[:, 0]]
     nfaces = np.bincount(flab, minlength=n)
@@ -151,7 +155,9 @@ def _component_thresholds(vertices, faces, fraction: float) -> tuple[int, float]
     np.maximum.at(hi, labels[used], vertices[used])
     diag = np.linalg.norm(np.where(np.isfinite(hi - lo), hi - lo, 0), axis=1)
     largest = int(np.argmax(nfaces))
-    return int(math.ceil(fraction * nfaces[largest])), float(fraction * diag[largest])
+    small = (nfaces < fraction * nfaces[largest]) | (diag < fraction * diag[largest])
+    small[largest] = False
+    return np.flatnonzero(small[flab])
 
 
 def _current(ms) -> tuple[np.ndarray, np.ndarray]:
@@ -261,7 +267,7 @@ def repair_mesh(
     max_hole_edges: int = 30,
     min_component_fraction: float = 0.01,
     smooth_iterations: int = 0,
-    target_faces: int | None = None,
+    target_faces: int = 0,
 ) -> tuple[TriMesh, dict]:
     """Clean a triangle mesh and close its small holes, keeping per-vertex attributes.
 
@@ -285,8 +291,8 @@ def repair_mesh(
         Components below this share of the largest (faces or diagonal) are removed.
     smooth_iterations : int
         Taubin smoothing steps; 0 skips smoothing.
-    target_faces : int, optional
-        Face count to decimate to; None (or a count above the current one) skips it.
+    target_faces : int
+        Face count to decimate to; 0 (or a count above the current one) skips it.
 
     Returns
     -------
@@ -326,8 +332,10 @@ def repair_mesh(
         raise ValueError(f"min_component_fraction must be in [0, 1], got {min_component_fraction}")
     if smooth_iterations < 0:
         raise ValueError(f"smooth_iterations must be >= 0, got {smooth_iterations}")
-    if target_faces is not None and target_faces < 1:
-        raise ValueError(f"target_faces must be positive or None, got {target_faces}")
+    if target_faces is None:
+        target_faces = 0
+    if target_faces < 0:
+        raise ValueError(f"target_faces must be >= 0 (0 keeps every face), got {target_faces}")
 
     nv0 = len(mesh.vertices)
     figures = {
@@ -373,15 +381,11 @@ def repair_mesh(
     verts, faces = _current(ms)
     n_comp = _count_components(faces, len(verts))
     if min_component_fraction > 0 and n_comp > 1:
-        min_faces, min_diag = _component_thresholds(verts, faces, min_component_fraction)
-        if min_faces > 1:
-            ms.meshing_remove_connected_component_by_face_number(
-                mincomponentsize=min_faces, removeunref=True
-            )
-        if min_diag > 0:
-            ms.meshing_remove_connected_component_by_diameter(
-                mincomponentdiag=pymeshlab.PureValue(min_diag), removeunref=True
-            )
+        small = _small_component_faces(verts, faces, min_component_fraction)
+        if len(small):
+            ms = _with_selected_faces(ms, verts, faces, small)
+            ms.meshing_remove_selected_faces()
+            ms.meshing_remove_unreferenced_vertices()
         verts, faces = _current(ms)
         figures["components_removed"] = n_comp - _count_components(faces, len(verts))
 
@@ -417,7 +421,7 @@ def repair_mesh(
             loops_after = count_boundary_loops(faces, len(verts))
             figures["holes_filled"] = loops - loops_after
             loops = loops_after
-            if smooth_iterations > 0 or target_faces is not None:
+            if smooth_iterations > 0 or target_faces > 0:
                 ms = pymeshlab.MeshSet()
                 ms.add_mesh(pymeshlab.Mesh(vertex_matrix=verts, face_matrix=faces))
 
@@ -455,7 +459,7 @@ def repair_mesh(
         ms.apply_coord_taubin_smoothing(stepsmoothnum=int(smooth_iterations))
         verts, faces = _current(ms)
 
-    if target_faces is not None and target_faces < len(faces):
+    if 0 < target_faces < len(faces):
         before = verts
         ms.meshing_decimation_quadric_edge_collapse(
             targetfacenum=int(target_faces),

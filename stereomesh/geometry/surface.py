@@ -6,6 +6,7 @@ import numpy as np
 
 from stereomesh.geometry.data import PointCloud, TriMesh
 from stereomesh.geometry.triangulate import _check_maps, valid_disparity_mask
+from stereomesh.params import CloudParams
 from stereomesh.rectify import RectifiedRig
 
 # Faces per chunk when accumulating normals: bounds the temporaries to ~0.5 GB on
@@ -77,13 +78,13 @@ def depth_grid_mesh(
     rig: RectifiedRig,
     image: np.ndarray,
     confidence: np.ndarray | None = None,
-    sigma_d: float | np.ndarray = 0.25,
+    sigma_d: float | np.ndarray = CloudParams.sigma_d,
     max_depth_jump: float = 0.03,
-    step: int = 1,
+    grid_step: int = 1,
 ) -> TriMesh:
     """Mesh the disparity map as a grid: one vertex per pixel, faces between neighbours.
 
-    Pixels are taken every ``step`` rows and columns. Each 2×2 block of valid
+    Pixels are taken every ``grid_step`` rows and columns. Each 2×2 block of valid
     pixels gives two triangles split along its shorter 3-D diagonal; a block
     with three valid pixels gives the one triangle they span. A triangle is
     kept only if ``max(Z)/min(Z) − 1 <= max_depth_jump`` over its vertices:
@@ -103,7 +104,7 @@ def depth_grid_mesh(
         One-sigma disparity uncertainty, pixels.
     max_depth_jump : float
         Largest relative depth difference within a triangle (0.03 = 3 %).
-    step : int
+    grid_step : int
         Pixel stride of the grid (1 = every pixel).
 
     Returns
@@ -127,11 +128,11 @@ def depth_grid_mesh(
     ((9, 3), (8, 3))
     """
     disparity, image, confidence, sigma = _check_maps(disparity, image, confidence, sigma_d)
-    if int(step) != step or step < 1:
-        raise ValueError(f"step must be a positive integer, got {step}")
+    if int(grid_step) != grid_step or grid_step < 1:
+        raise ValueError(f"grid_step must be a positive integer, got {grid_step}")
     if not max_depth_jump >= 0:
         raise ValueError(f"max_depth_jump must be >= 0, got {max_depth_jump}")
-    step = int(step)
+    step = int(grid_step)
     height, width = disparity.shape
     f, b = float(rig.focal_px), float(rig.baseline)
 
@@ -224,7 +225,7 @@ def depth_grid_mesh(
     # Vertex ids only for pixels some triangle uses, numbered in row-major order.
     n_vert = int(used.sum())
     if n_vert >= 2**31 - 1:
-        raise ValueError("too many vertices for int32 faces; use a larger step")
+        raise ValueError("too many vertices for int32 faces; use a larger grid_step")
     vid = np.full((gh, gw), -1, np.int32)
     vid[used] = np.arange(n_vert, dtype=np.int32)
     n_faces = sum(int(m.sum()) for _, m in kept)
@@ -298,7 +299,7 @@ def _median_spacing(points: np.ndarray, sample: int = 100_000, seed: int = 0) ->
 
 def poisson_mesh(
     cloud: PointCloud,
-    depth: int = 9,
+    poisson_depth: int = 9,
     density_quantile: float = 0.02,
     scale: float = 1.1,
 ) -> TriMesh:
@@ -314,8 +315,8 @@ def poisson_mesh(
     ----------
     cloud : PointCloud
         Points with normals (see :func:`~stereomesh.geometry.filters.filter_cloud`).
-    depth : int
-        Octree depth; the finest cell is about ``extent / 2**depth``.
+    poisson_depth : int
+        Octree depth; the finest cell is about ``extent / 2**poisson_depth``.
     density_quantile : float
         Share of lowest-density vertices removed, in [0, 1).
     scale : float
@@ -342,7 +343,7 @@ def poisson_mesh(
     >>> pts = np.c_[g, np.ones(len(g))]
     >>> pc = PointCloud(pts, np.full((len(g), 3), 200, np.uint8),
     ...                 np.ones(len(g), np.float32), np.zeros(len(g), np.float32))
-    >>> m = poisson_mesh(estimate_normals(pc), depth=6)
+    >>> m = poisson_mesh(estimate_normals(pc), poisson_depth=6)
     >>> bool(abs(np.median(m.vertices[:, 2]) - 1.0) < 0.01)
     True
     """
@@ -363,7 +364,7 @@ def poisson_mesh(
     pcd.normals = o3d.utility.Vector3dVector(cloud.normals.astype(np.float64))
     pcd.colors = o3d.utility.Vector3dVector(cloud.colors.astype(np.float64) / 255.0)
     mesh, dens = o3d.geometry.TriangleMesh.create_from_point_cloud_poisson(
-        pcd, depth=int(depth), scale=float(scale)
+        pcd, depth=int(poisson_depth), scale=float(scale)
     )
     verts = np.asarray(mesh.vertices, np.float64)
     faces = np.asarray(mesh.triangles, np.int64)

@@ -5,6 +5,7 @@ from __future__ import annotations
 import numpy as np
 
 from stereomesh.geometry.data import PointCloud
+from stereomesh.params import CloudParams
 from stereomesh.rectify import RectifiedRig
 
 
@@ -63,7 +64,7 @@ def triangulate(
     rig: RectifiedRig,
     image: np.ndarray,
     confidence: np.ndarray | None = None,
-    sigma_d: float | np.ndarray = 0.25,
+    sigma_d: float | np.ndarray = CloudParams.sigma_d,
 ) -> PointCloud:
     """Back-project every valid disparity to a coloured 3-D point.
 

@@ -5,8 +5,11 @@ Rectified form (fixed by the design)::
     {"rectified": true, "image_size": [W, H], "focal_px": f, "cx": cx, "cy": cy,
      "baseline": B, "doffs": 0.0, "units": "m"}
 
-``units`` may be ``"m"`` (metric) or ``"unscaled"`` (baseline nominal). The full
-form with intrinsics, distortion, R and T arrives with calibrated rectification.
+``units`` names the unit of ``baseline``: ``"m"`` (also ``"metre"``, ``"meter"``
+and their plurals), ``"cm"`` or ``"mm"`` (converted to metres, the unit of every
+output), or ``"unscaled"`` when the baseline is nominal and the scale unknown.
+``image_size`` holds two positive whole numbers. The full form with
+intrinsics, distortion, R and T arrives with calibrated rectification.
 """
 
 from __future__ import annotations
@@ -19,6 +22,35 @@ from stereomesh.errors import InputError
 from stereomesh.rectify import RectifiedRig
 
 _REQUIRED = ("image_size", "focal_px", "cx", "cy", "baseline")
+
+UNITS_IN_METRES = {"m": 1.0, "metre": 1.0, "metres": 1.0, "meter": 1.0, "meters": 1.0,
+                   "cm": 0.01, "mm": 0.001}
+"""Baseline units read as metric, with their length in metres."""
+
+
+def _image_size(value, source: str) -> tuple[int, int]:
+    fix = f"{source}: image_size must be [width, height], two positive whole numbers of pixels"
+    if not (isinstance(value, list | tuple) and len(value) == 2):
+        raise InputError(f"{fix}; got {value!r}")
+    size = []
+    for v in value:
+        if isinstance(v, bool) or not isinstance(v, int | float) or v != int(v) or v <= 0:
+            raise InputError(f"{fix}; got {value!r}")
+        size.append(int(v))
+    return size[0], size[1]
+
+
+def _units(value, source: str) -> tuple[float | None, str]:
+    """Metres per baseline unit (None when unscaled) and the unit as written."""
+    text = str(value).strip()
+    if text == "unscaled":
+        return None, text
+    if text.lower() in UNITS_IN_METRES:
+        return UNITS_IN_METRES[text.lower()], text
+    raise InputError(
+        f"{source}: units {value!r} is not known; give \"m\", \"cm\" or \"mm\" for the "
+        "baseline's unit, or \"unscaled\" when the baseline is nominal"
+    )
 
 
 def rig_from_dict(data: dict, source: str = "calibration") -> RectifiedRig:
@@ -33,30 +65,27 @@ def rig_from_dict(data: dict, source: str = "calibration") -> RectifiedRig:
     missing = [k for k in _REQUIRED if k not in data]
     if missing:
         raise InputError(f"{source}: missing field(s) {', '.join(missing)}")
-    size = data["image_size"]
-    if not (isinstance(size, list | tuple) and len(size) == 2 and all(int(v) > 0 for v in size)):
-        raise InputError(f"{source}: image_size must be [width, height] in pixels")
-    try:
-        values = {k: float(data[k]) for k in ("focal_px", "cx", "cy", "baseline")}
-        doffs = float(data.get("doffs", 0.0))
-    except (TypeError, ValueError):
-        raise InputError(
-            f"{source}: focal_px, cx, cy, baseline and doffs must be numbers"
-        ) from None
-    if not all(math.isfinite(v) for v in [*values.values(), doffs]):
-        raise InputError(f"{source}: calibration values must be finite")
+    size = _image_size(data["image_size"], source)
+    values = {}
+    for key in ("focal_px", "cx", "cy", "baseline", "doffs"):
+        value = data.get(key, 0.0)
+        if isinstance(value, bool) or not isinstance(value, int | float):
+            raise InputError(f"{source}: {key} must be a number, got {value!r}")
+        if not math.isfinite(value):
+            raise InputError(f"{source}: {key} must be finite, got {value!r}")
+        values[key] = float(value)
     if values["focal_px"] <= 0 or values["baseline"] <= 0:
         raise InputError(f"{source}: focal_px and baseline must be positive")
-    units = str(data.get("units", "m"))
+    metres, units = _units(data.get("units", "m"), source)
     return RectifiedRig(
         focal_px=values["focal_px"],
         cx=values["cx"],
         cy=values["cy"],
-        baseline=values["baseline"],
-        doffs=doffs,
-        image_size=(int(size[0]), int(size[1])),
-        units=units,
-        metric=units == "m",
+        baseline=values["baseline"] * (metres or 1.0),
+        doffs=values["doffs"],
+        image_size=size,
+        units="m" if metres else "unscaled",
+        metric=metres is not None,
     )
 
 

@@ -20,8 +20,9 @@ def read_image(path: str | Path) -> np.ndarray:
     Returns
     -------
     (H, W, 3) uint8 or uint16
-        16-bit files keep their depth; grey images are repeated on three channels,
-        an alpha channel is dropped.
+        16-bit files keep their depth; floating-point files (values in [0, 1])
+        become 16-bit; grey images are repeated on three channels, an alpha
+        channel is dropped.
 
     Raises
     ------
@@ -40,7 +41,7 @@ def read_image(path: str | Path) -> np.ndarray:
             f"{path}: not a readable image; give a PNG, JPEG or TIFF file"
         )
     if img.dtype not in (np.uint8, np.uint16):
-        img = np.clip(img, 0, 255).astype(np.uint8)
+        img = _as_uint16(img, path)
     if img.ndim == 2:
         img = np.repeat(img[:, :, None], 3, axis=2)
     elif img.shape[2] == 4:
@@ -48,6 +49,22 @@ def read_image(path: str | Path) -> np.ndarray:
     else:
         img = cv2.cvtColor(img, cv2.COLOR_BGR2RGB)
     return np.ascontiguousarray(img)
+
+
+def _as_uint16(img: np.ndarray, path: Path) -> np.ndarray:
+    """A floating-point or other-depth image as 16-bit, refusing what would be misread."""
+    if np.issubdtype(img.dtype, np.floating):
+        if not np.isfinite(img).all() or img.min() < 0.0 or img.max() > 1.0:
+            raise InputError(
+                f"{path}: a floating-point image with values outside [0, 1] "
+                f"([{np.nanmin(img):g}, {np.nanmax(img):g}]); save it as 8- or 16-bit, or "
+                "scaled to [0, 1]"
+            )
+        return np.round(img * 65535.0).astype(np.uint16)
+    if img.dtype in (np.int8, np.int16) or img.dtype.itemsize > 2:
+        raise InputError(f"{path}: {img.dtype} pixels are not supported; save it as 8- or "
+                         "16-bit unsigned")
+    return img.astype(np.uint16)
 
 
 def to_uint8(image: np.ndarray) -> np.ndarray:

@@ -63,15 +63,22 @@ _NAMES_OUT = {"f4": "float", "u1": "uchar", "i4": "int"}
 
 
 # Files travel without their report, so the header carries the units and the caution.
-_CAUTION_COMMENTS = (
-    "comment units: metres (unscaled if the report says so); sigma_z: 1-sigma depth uncertainty",
-    "comment stereo-derived geometry is an estimate; for structural, legal or survey use",
-    "comment defer to licensed surveyors and local codes",
-)
+def _caution_comments(scale: str) -> list[str]:
+    import textwrap
+
+    from stereomesh import CAUTION
+
+    if scale not in ("metric", "unscaled"):
+        raise ValueError(f"scale must be 'metric' or 'unscaled', got {scale!r}")
+    units = "metres" if scale == "metric" else "unscaled (nominal baseline, not metres)"
+    lines = [f"units: {units}; sigma_z: 1-sigma depth uncertainty"]
+    lines += textwrap.wrap(CAUTION, 76)
+    return [f"comment {line}" for line in lines]
 
 
-def _header(n_vertices: int, n_faces: int | None, comment: str) -> bytes:
-    lines = ["ply", "format binary_little_endian 1.0", f"comment {comment}", *_CAUTION_COMMENTS]
+def _header(n_vertices: int, n_faces: int | None, comment: str, scale: str) -> bytes:
+    lines = ["ply", "format binary_little_endian 1.0", f"comment {comment}",
+             *_caution_comments(scale)]
     lines.append(f"element vertex {n_vertices}")
     for name in VERTEX_DTYPE.names:
         lines.append(f"property {_NAMES_OUT[VERTEX_DTYPE[name].base.str[1:]]} {name}")
@@ -106,7 +113,7 @@ def _write(path, header: bytes, vertices: np.ndarray, faces: np.ndarray | None) 
             faces.tofile(fh)
 
 
-def write_mesh_ply(path: str | os.PathLike, mesh) -> None:
+def write_mesh_ply(path: str | os.PathLike, mesh, *, scale: str = "metric") -> None:
     """Write a :class:`~stereomesh.geometry.data.TriMesh` as binary PLY.
 
     Parameters
@@ -115,6 +122,8 @@ def write_mesh_ply(path: str | os.PathLike, mesh) -> None:
         Target file; written atomically.
     mesh : TriMesh
         Positions are stored as float32 (about 0.1 µm resolution at 1 m).
+    scale : {"metric", "unscaled"}
+        What the header says the lengths are.
 
     Examples
     --------
@@ -133,10 +142,10 @@ def write_mesh_ply(path: str | os.PathLike, mesh) -> None:
     faces = np.empty(len(mesh.faces), FACE_DTYPE)
     faces["count"] = 3
     faces["vertex_indices"] = mesh.faces
-    _write(path, _header(len(verts), len(faces), "stereomesh mesh"), verts, faces)
+    _write(path, _header(len(verts), len(faces), "stereomesh mesh", scale), verts, faces)
 
 
-def write_cloud_ply(path: str | os.PathLike, cloud) -> None:
+def write_cloud_ply(path: str | os.PathLike, cloud, *, scale: str = "metric") -> None:
     """Write a :class:`~stereomesh.geometry.data.PointCloud` as binary PLY (no faces).
 
     Parameters
@@ -145,6 +154,8 @@ def write_cloud_ply(path: str | os.PathLike, cloud) -> None:
         Target file; written atomically.
     cloud : PointCloud
         ``filled`` is written as 0 for every point.
+    scale : {"metric", "unscaled"}
+        What the header says the lengths are.
 
     Examples
     --------
@@ -166,7 +177,7 @@ def write_cloud_ply(path: str | os.PathLike, cloud) -> None:
         cloud.sigma_z,
         np.zeros(n, np.uint8),
     )
-    _write(path, _header(n, None, "stereomesh point cloud"), verts, None)
+    _write(path, _header(n, None, "stereomesh point cloud", scale), verts, None)
 
 
 def _parse_header(fh, path: Path):
@@ -269,7 +280,7 @@ def read_ply(path: str | os.PathLike) -> dict[str, np.ndarray]:
     return out
 
 
-def write_exchange_cloud_ply(path: str | os.PathLike, cloud) -> None:
+def write_exchange_cloud_ply(path: str | os.PathLike, cloud, *, scale: str = "metric") -> None:
     """Write a cloud as :func:`write_cloud_ply` does, plus its source pixels.
 
     The editor plugin keeps each point's left-image pixel so that a cloud edited
@@ -283,6 +294,8 @@ def write_exchange_cloud_ply(path: str | os.PathLike, cloud) -> None:
         Target file; written atomically.
     cloud : PointCloud
         Without ``pixels`` the file is exactly :func:`write_cloud_ply`'s.
+    scale : str
+        ``"metric"`` or ``"unscaled"``, stated in the header as :func:`write_cloud_ply` does.
 
     Examples
     --------
@@ -296,7 +309,7 @@ def write_exchange_cloud_ply(path: str | os.PathLike, cloud) -> None:
     [[3, 4], [5, 6]]
     """
     if cloud.pixels is None:
-        write_cloud_ply(path, cloud)
+        write_cloud_ply(path, cloud, scale=scale)
         return
     n = len(cloud)
     base = _vertex_records(cloud.points, cloud.normals, cloud.colors, cloud.confidence,
@@ -306,7 +319,7 @@ def write_exchange_cloud_ply(path: str | os.PathLike, cloud) -> None:
     for name in base.dtype.names:
         rec[name] = base[name]
     rec["col"], rec["row"] = cloud.pixels[:, 0], cloud.pixels[:, 1]
-    header = _header(n, None, "stereomesh point cloud").decode("ascii")
+    header = _header(n, None, "stereomesh point cloud", scale).decode("ascii")
     header = header.replace("end_header\n", "property int col\nproperty int row\nend_header\n")
     _write(path, header.encode("ascii"), rec, None)
 

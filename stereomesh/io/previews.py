@@ -35,6 +35,44 @@ def _camera_view_angle(vertices: np.ndarray, focal: np.ndarray, aspect: float) -
     return float(np.clip(2.0 * np.degrees(np.arctan(half)) * 1.05, 5.0, 150.0))
 
 
+class RendererUnavailable(RuntimeError):
+    """No off-screen renderer on this machine (pyvista missing or no OpenGL context)."""
+
+
+_renderer_state: dict = {}
+
+
+def check_renderer() -> None:
+    """Raise :class:`RendererUnavailable` unless pyvista can render off-screen here.
+
+    The probe renders an empty scene, independently of the mesh code, so a bug
+    in :func:`render_mesh_png` is never mistaken for a missing renderer. The
+    answer is kept for the process.
+    """
+    if "error" not in _renderer_state:
+        try:
+            import pyvista
+            from vtkmodules.vtkCommonCore import vtkLogger
+
+            # VTK warns "bad X server connection" on every run without a display,
+            # then renders off-screen all the same; keep its errors only.
+            vtkLogger.SetStderrVerbosity(vtkLogger.VERBOSITY_ERROR)
+            pyvista.OFF_SCREEN = True
+            plotter = pyvista.Plotter(off_screen=True, window_size=(8, 8))
+            try:
+                plotter.screenshot(None, return_img=True)
+            finally:
+                plotter.close()
+            _renderer_state["error"] = None
+        except Exception as exc:  # any failure of the bare probe means no renderer here
+            _renderer_state["error"] = f"{type(exc).__name__}: {exc}"
+    if _renderer_state["error"] is not None:
+        raise RendererUnavailable(
+            f"no off-screen renderer (pyvista/VTK with OpenGL, EGL or OSMesa): "
+            f"{_renderer_state['error']}"
+        )
+
+
 def render_mesh_png(
     path: str | os.PathLike,
     vertices: np.ndarray,
@@ -65,8 +103,9 @@ def render_mesh_png(
     ------
     ValueError
         If the arrays have the wrong shapes or the mesh is empty.
-    RuntimeError
-        If pyvista cannot render here (no OpenGL/EGL/OSMesa context).
+    RendererUnavailable
+        If pyvista cannot render off-screen here (no OpenGL/EGL/OSMesa
+        context). Any other error is a bug and propagates as it is.
 
     Examples
     --------
@@ -91,24 +130,19 @@ def render_mesh_png(
     if width < 1 or height < 1:
         raise ValueError(f"size must be positive, got {size}")
 
-    try:
-        import pyvista
-    except ImportError as exc:  # pragma: no cover - pyvista is a dependency
-        raise RuntimeError(f"mesh preview needs pyvista: {exc}") from exc
-
+    check_renderer()
+    import pyvista
     from PIL import Image
 
     from stereomesh.io.atomic import atomic_path
 
-    pyvista.OFF_SCREEN = True
     lo, hi = vertices.min(axis=0), vertices.max(axis=0)
     focal = (lo + hi) / 2.0
     if np.linalg.norm(focal) < 1e-12:
         focal = np.array([0.0, 0.0, 1.0])
     poly = pyvista.PolyData.from_regular_faces(vertices, faces.astype(np.int64))
-    plotter = None
+    plotter = pyvista.Plotter(off_screen=True, window_size=(width, height))
     try:
-        plotter = pyvista.Plotter(off_screen=True, window_size=(width, height))
         plotter.set_background(_BACKGROUND)
         if colors is not None:
             poly.point_data["rgb"] = colors
@@ -122,14 +156,8 @@ def render_mesh_png(
         cam.view_angle = _camera_view_angle(vertices, focal, width / height)
         plotter.renderer.reset_camera_clipping_range()
         image = plotter.screenshot(None, return_img=True)
-    except Exception as exc:
-        raise RuntimeError(
-            f"mesh preview could not be rendered (no usable OpenGL/EGL context?): "
-            f"{type(exc).__name__}: {exc}"
-        ) from exc
     finally:
-        if plotter is not None:
-            plotter.close()
+        plotter.close()
     image = np.asarray(image)
     if image.ndim != 3 or image.shape[:2] != (height, width):
         raise RuntimeError(

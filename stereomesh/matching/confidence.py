@@ -11,15 +11,21 @@ def confidence_map(
     lr_diff: np.ndarray,
     gray: np.ndarray,
     *,
-    peak_ratio_scale: float = 0.25,
+    peak_ratio_scale: float = 1.0,
     lr_sigma: float = 1.0,
-    texture_scale: float = 4.0,
+    texture_scale: float = 0.25,
 ) -> np.ndarray:
     """Confidence from the cost curve, left-right agreement and local texture.
 
     The three cues fail in different places (repetitive texture, occlusion
     borders, flat regions), so they are multiplied: a pixel is confident only
-    when all three agree.
+    when all three agree. The peak ratio ``(c2 − c1) / c2`` is the cue that
+    ranks errors (Hu & Mordohai 2012 compare such measures); it must not
+    saturate, or the ranking is lost: with a scale of 0.25 most pixels of a
+    semi-global solve sat at 1 and the sparsification curve on scikit-image's
+    motorcycle pair was flat (area 0.99 of the mean error; 0.42 at scale 1).
+    Strong texture goes with depth edges, where errors are larger, so the
+    texture cue only marks nearly flat windows (scale 0.25 grey levels/pixel).
 
     Parameters
     ----------
@@ -30,7 +36,8 @@ def confidence_map(
     gray : (H, W) array
         Left grey image, grey levels of 0–255.
     peak_ratio_scale : float
-        Relative margin ``(c2 − c1) / c2`` that counts as fully distinct.
+        Relative margin ``(c2 − c1) / c2`` that counts as fully distinct; 1
+        keeps the margin itself.
     lr_sigma : float
         Left-right disagreement (pixels) at which that cue drops to ``e^-0.5``.
     texture_scale : float
@@ -65,9 +72,9 @@ def confidence_map_reference(
     lr_diff: np.ndarray,
     gray: np.ndarray,
     *,
-    peak_ratio_scale: float = 0.25,
+    peak_ratio_scale: float = 1.0,
     lr_sigma: float = 1.0,
-    texture_scale: float = 4.0,
+    texture_scale: float = 0.25,
 ) -> np.ndarray:
     """:func:`confidence_map` in numpy and OpenCV, kept as the reference for the tests."""
     import cv2

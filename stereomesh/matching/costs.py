@@ -12,7 +12,7 @@ from collections.abc import Callable
 
 import numpy as np
 
-MAX_CENSUS_BITS = 63
+from stereomesh.params import MAX_CENSUS_BITS
 
 
 def _as_gray(image: np.ndarray, name: str) -> np.ndarray:

@@ -21,6 +21,11 @@ OCCLUSION_CLASSES = {
 }
 """Values of ``occlusion.png`` (fixed by the design)."""
 
+# Relative cost margins of belief propagation's beliefs are about half those of
+# the summed path costs of semi-global matching (measured on the demo and the
+# motorcycle pairs), so its peak ratio counts as fully distinct at half.
+_PEAK_RATIO_SCALE = {"sgm": 1.0, "wta": 1.0, "bp": 0.5}
+
 
 @dataclass
 class DisparityResult:
@@ -41,6 +46,8 @@ class DisparityResult:
         The search range used.
     figures : dict
         Quality figures and timings for the report.
+    warnings : list of str
+        What the user should know about this result (a guessed search range...).
     """
 
     disparity: np.ndarray
@@ -50,13 +57,15 @@ class DisparityResult:
     d_min: int
     n_disp: int
     figures: dict = field(default_factory=dict)
+    warnings: list[str] = field(default_factory=list)
 
 
 def to_gray(image: np.ndarray) -> np.ndarray:
     """Luma (ITU-R BT.601 weights) of an RGB or grey image as float32, 0–255 scale.
 
-    16-bit images are scaled to the 8-bit range so that penalties and
-    thresholds mean the same for both.
+    16-bit images are scaled to the 8-bit range, and float images (taken to
+    be in [0, 1], as scikit-image has them) multiplied by 255, so that
+    penalties and thresholds mean the same for all.
 
     Examples
     --------
@@ -65,7 +74,12 @@ def to_gray(image: np.ndarray) -> np.ndarray:
     255.0
     """
     image = np.asarray(image)
-    scale = 255.0 / 65535.0 if image.dtype == np.uint16 else 1.0
+    if image.dtype == np.uint16:
+        scale = 255.0 / 65535.0
+    elif np.issubdtype(image.dtype, np.floating):
+        scale = 255.0
+    else:
+        scale = 1.0
     if image.ndim == 3 and image.shape[2] == 3 and image.dtype in (np.uint8, np.uint16):
         from stereomesh.matching import _kernels
 
@@ -128,12 +142,15 @@ def compute_disparity(
     from stereomesh.matching.refine import SUBPIXEL_METHODS, speckle_mask
 
     params = params or DisparityParams()
+    if not isinstance(params, DisparityParams):
+        raise TypeError(f"params must be DisparityParams, got {type(params).__name__}")
+    params.validate()
+    _check_images(left, right)
     report = progress or (lambda step, frac: None)
     t0 = time.perf_counter()
     gl, gr = to_gray(left), to_gray(right)
-    if gl.shape != gr.shape:
-        raise ValueError(f"left {gl.shape} and right {gr.shape} differ in size")
     figures: dict = {}
+    warnings: list[str] = []
     rng = parse_disp_range(params.disp_range)
     if rng is None:
         from stereomesh.matching.search_range import estimate_disparity_range
@@ -142,6 +159,12 @@ def compute_disparity(
             np.clip(gl, 0, 255).astype(np.uint8), np.clip(gr, 0, 255).astype(np.uint8)
         )
         figures["auto_range"] = range_figures
+        if range_figures.get("fallback"):
+            warnings.append(
+                f"too few feature matches ({range_figures['matches']}) to estimate the "
+                f"disparity range; searched the default {rng[0]}:{rng[1]} instead; give "
+                "--disp-range MIN:MAX if the scene is nearer"
+            )
     d_min, d_max = rng
     n_disp = d_max - d_min
     figures["disp_range"] = [d_min, d_max]
@@ -196,7 +219,8 @@ def compute_disparity(
         n_disp, params.lr_max_diff, SUBPIXEL_METHODS.index(params.subpixel),
         np.float32(max(1.0, params.lr_max_diff)),
     )
-    confidence = confidence_map(maps["c_best"], maps["c_second"], lr_diff, gl)
+    confidence = confidence_map(maps["c_best"], maps["c_second"], lr_diff, gl,
+                                peak_ratio_scale=_PEAK_RATIO_SCALE[params.method])
 
     speckles = speckle_mask(disparity, params.speckle_size, params.speckle_range)
     low_conf = (classes == 0) & (confidence < params.min_confidence)
@@ -229,7 +253,31 @@ def compute_disparity(
         step_seconds=timings,
     )
     labels = np.maximum(best_k, 0).astype(np.int32, copy=False)
-    return DisparityResult(disparity, confidence, classes, labels, d_min, n_disp, figures)
+    return DisparityResult(disparity, confidence, classes, labels, d_min, n_disp, figures,
+                           warnings)
+
+
+def _check_images(left, right) -> None:
+    """Refuse images the engine would misread, saying what to give instead."""
+    for name, image in (("left", left), ("right", right)):
+        image = np.asarray(image)
+        if image.ndim not in (2, 3) or (image.ndim == 3 and image.shape[2] != 3):
+            raise ValueError(f"{name} image must be (H, W) or (H, W, 3), got {image.shape}")
+        kind = image.dtype
+        if kind in (np.uint8, np.uint16):
+            continue
+        if not np.issubdtype(kind, np.floating):
+            raise ValueError(f"{name} image must be uint8, uint16 or float in [0, 1], got {kind}")
+        finite = np.isfinite(image)
+        if not finite.all():
+            raise ValueError(f"{name} image has NaN or infinite values")
+        if image.size and (image.min() < 0.0 or image.max() > 1.0):
+            raise ValueError(
+                f"{name} image is float with values in [{image.min():g}, {image.max():g}]; "
+                "float images must be in [0, 1] (convert 0-255 data to uint8)"
+            )
+    if np.shape(left)[:2] != np.shape(right)[:2]:
+        raise ValueError(f"left {np.shape(left)} and right {np.shape(right)} differ in size")
 
 
 def warm_up(params: DisparityParams | None = None) -> None:
@@ -275,7 +323,9 @@ def row_strips(height: int, width: int, n_disp: int, params: DisparityParams) ->
 
         def fits(rows):
             return plan_block_rows(rows, width, n_disp, budget, paths=params.paths,
-                                   cost=params.cost) is not None
+                                   cost=params.cost, p2=params.p2,
+                                   window=(params.census_width, params.census_height)
+                                   ) is not None
     else:
         # Bytes per (pixel, hypothesis): the cost volume of winner-takes-all;
         # belief propagation keeps every hypothesis only at its coarsest level.
@@ -319,7 +369,9 @@ def _solve(gl, gr, d_min, n_disp, params, workspace=None):
         h, w = gl.shape
         block_rows = plan_block_rows(h, w, n_disp, params.memory_budget_mb * 2**20,
                                      paths=params.paths, cost=params.cost,
-                                     fresh=workspace is None or workspace.nbytes == 0)
+                                     fresh=workspace is None or workspace.nbytes == 0,
+                                     p2=params.p2,
+                                     window=(params.census_width, params.census_height))
         return semi_global_matching(
             gl, gr, d_min, n_disp, cost=params.cost,
             window=(params.census_width, params.census_height), p1=params.p1, p2=params.p2,

@@ -17,8 +17,11 @@ from __future__ import annotations
 import numpy as np
 
 from stereomesh.matching.winners import Winners
+from stereomesh.params import MAX_P2, DisparityParams
 
-MAX_P2 = 1000
+# The schema's defaults are the solver's defaults (a dataclass keeps each
+# field's default as a class attribute).
+_D = DisparityParams
 
 # Relative work of the parts of one row, measured on this project's reference
 # machine (2 cores, AVX-512): going down, the two horizontal paths that lane 0
@@ -33,10 +36,10 @@ def aggregate_costs(
     cost: np.ndarray,
     gray: np.ndarray | None = None,
     *,
-    p1: int = 8,
-    p2: int = 96,
-    p2_gradient_scale: float = 8.0,
-    paths: int = 8,
+    p1: int = _D.p1,
+    p2: int = _D.p2,
+    p2_gradient_scale: float = _D.p2_gradient_scale,
+    paths: int = _D.paths,
 ) -> np.ndarray:
     """Sum of the semi-global path costs over 4 or 8 directions.
 
@@ -100,11 +103,11 @@ def semi_global_matching(
     n_disp: int,
     *,
     cost: str = "census",
-    window: tuple[int, int] = (7, 5),
-    p1: int = 8,
-    p2: int = 96,
-    p2_gradient_scale: float = 8.0,
-    paths: int = 8,
+    window: tuple[int, int] = (_D.census_width, _D.census_height),
+    p1: int = _D.p1,
+    p2: int = _D.p2,
+    p2_gradient_scale: float = _D.p2_gradient_scale,
+    paths: int = _D.paths,
     block_rows: int | None = None,
     workspace: Workspace | None = None,
 ) -> Winners:
@@ -259,7 +262,7 @@ class Workspace:
         return out
 
 
-def best_block_rows(height: int, paths: int = 8) -> int:
+def best_block_rows(height: int, paths: int = _D.paths) -> int:
     """Rows per recomputed block that minimise checkpoints plus block buffer.
 
     Checkpoints hold ``ndir`` rows of path values each (3 directions from above
@@ -270,20 +273,26 @@ def best_block_rows(height: int, paths: int = 8) -> int:
     return max(1, min(height, int(round(np.sqrt(ndir * height)))))
 
 
-def memory_bytes(height: int, width: int, n_disp: int, *, paths: int = 8,
-                 cost: str = "census", block_rows: int | None = None) -> int:
+def memory_bytes(height: int, width: int, n_disp: int, *, paths: int = _D.paths,
+                 cost: str = _D.cost, block_rows: int | None = None, p2: int = _D.p2,
+                 window: tuple[int, int] = (_D.census_width, _D.census_height)) -> int:
     """Bytes :func:`semi_global_matching` allocates for an image of this size.
 
     Work buffers, census strings, the output maps and (for costs other than
-    census) the cost volume; ``block_rows`` as for :func:`semi_global_matching`.
+    census) the cost volume; ``block_rows``, ``p2`` and ``window`` as for
+    :func:`semi_global_matching`. Path buffers are bytes only when the largest
+    cost plus ``p2`` fits one; volume costs are assumed not to (their largest
+    value is known only once they are computed).
     """
     from stereomesh.matching._sgm_kernels import buffer_shapes
     from stereomesh.matching._simd import LANES
 
     dp = -(-n_disp // (2 * LANES)) * 2 * LANES  # the wider padding of byte lanes, at most
     k = best_block_rows(height, paths) if block_rows is None else min(block_rows, height)
+    max_cost = window[0] * window[1] - 1 if cost == "census" else 255
+    narrow = max_cost + p2 <= 255
     work = sum(int(np.prod(shape)) * np.dtype(dtype).itemsize
-               for shape, dtype in buffer_shapes(height, width, dp, paths == 8, k, True))
+               for shape, dtype in buffer_shapes(height, width, dp, paths == 8, k, narrow))
     pixels = height * width
     # The edge-padded float32 images the census is taken of, and its 16-bit
     # planes (up to 4 per image).
@@ -293,7 +302,9 @@ def memory_bytes(height: int, width: int, n_disp: int, *, paths: int = 8,
 
 
 def plan_block_rows(height: int, width: int, n_disp: int, budget_bytes: int, *,
-                    paths: int = 8, cost: str = "census", fresh: bool = False) -> int | None:
+                    paths: int = _D.paths, cost: str = _D.cost, fresh: bool = False,
+                    p2: int = _D.p2,
+                    window: tuple[int, int] = (_D.census_width, _D.census_height)) -> int | None:
     """Rows per block for a memory budget, or None if even the smallest need does not fit.
 
     Larger blocks recompute fewer rows (the first pass covers all rows above
@@ -306,7 +317,8 @@ def plan_block_rows(height: int, width: int, n_disp: int, budget_bytes: int, *,
     that needs least memory, and a workspace grows once it is reused.
     """
     def need(k):
-        return memory_bytes(height, width, n_disp, paths=paths, cost=cost, block_rows=k)
+        return memory_bytes(height, width, n_disp, paths=paths, cost=cost, block_rows=k, p2=p2,
+                            window=window)
 
     lo = best_block_rows(height, paths)
     if need(lo) > budget_bytes:
@@ -365,4 +377,54 @@ def path_costs_reference(cost_line: np.ndarray, p1: int, p2: int) -> np.ndarray:
         best[1:] = np.minimum(best[1:], prev[:-1] + p1)
         best[:-1] = np.minimum(best[:-1], prev[1:] + p1)
         out[x] = cost_line[x] + best - m
+    return out
+
+
+SGM_DIRECTIONS = ((0, 1), (0, -1), (1, 0), (-1, 0), (1, 1), (1, -1), (-1, 1), (-1, -1))
+"""The 8 path directions ``(dy, dx)`` a path steps along; the first 4 are the 4-path set."""
+
+
+def penalty2_reference(p1: int, p2: int, p2_gradient_scale: float, a: float, b: float) -> int:
+    """P2 between neighbours of intensities ``a`` and ``b``, in plain Python.
+
+    ``P2 / (1 + |a − b| / scale)`` truncated to an integer, never below
+    ``P1 + 1`` (so a large jump always costs more than a step of one); the
+    constant ``P2`` when ``scale`` is 0.
+    """
+    p = p2 / (1.0 + abs(float(a) - float(b)) / p2_gradient_scale) if p2_gradient_scale > 0 else p2
+    p = int(p)
+    return p if p > p1 else p1 + 1
+
+
+def path_volume_reference(cost: np.ndarray, gray: np.ndarray, direction: tuple[int, int],
+                          p1: int, p2: int, p2_gradient_scale: float) -> np.ndarray:
+    """One path direction's costs ``L_r(p, d)`` over the whole image, by the definition.
+
+    ``L_r(p, d) = C(p, d) + min(L_r(q, d), L_r(q, d ± 1) + P1, min_k L_r(q, k) + P2(p, q))
+    − min_k L_r(q, k)`` with ``q = p − r`` the pixel before ``p`` on the path; a path
+    starts afresh (``L_r = C``) where ``q`` is outside the image (Hirschmüller 2008,
+    eq. 13, with ``P2`` adapted to the intensity step between ``p`` and ``q``).
+    A slow reference for the tests: pixels are visited in an order where ``q``
+    always comes first.
+    """
+    cost = np.asarray(cost, np.int64)
+    gray = np.asarray(gray, np.float32)
+    h, w, _ = cost.shape
+    dy, dx = direction
+    out = np.zeros_like(cost)
+    ys = range(h) if dy >= 0 else range(h - 1, -1, -1)
+    xs = list(range(w) if dx >= 0 else range(w - 1, -1, -1))
+    for y in ys:
+        for x in xs:
+            qy, qx = y - dy, x - dx
+            if not (0 <= qy < h and 0 <= qx < w):
+                out[y, x] = cost[y, x]
+                continue
+            prev = out[qy, qx]
+            m = prev.min()
+            pen = penalty2_reference(p1, p2, p2_gradient_scale, gray[y, x], gray[qy, qx])
+            best = np.minimum(prev, m + pen)
+            best[1:] = np.minimum(best[1:], prev[:-1] + p1)
+            best[:-1] = np.minimum(best[:-1], prev[1:] + p1)
+            out[y, x] = cost[y, x] + best - m
     return out

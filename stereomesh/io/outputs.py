@@ -1,0 +1,119 @@
+"""Writing a reconstruction to a folder: maps, cloud, mesh, exports and previews.
+
+The layout of an output folder (fixed by the design)::
+
+    disparity.pfm     float32, left rectified grid, NaN where rejected
+    confidence.pfm    float32 in [0, 1], 0 where the disparity is NaN
+    occlusion.png     uint8 classes (see OCCLUSION_CLASSES)
+    cloud.ply         the cleaned coloured cloud
+    mesh.ply          the repaired surface
+    previews/         PNG previews
+    report.json       written last by the caller
+
+Every file is written atomically; whatever a partial reconstruction holds is
+written, so a failed stage never costs the user the earlier results.
+"""
+
+from __future__ import annotations
+
+import time
+from pathlib import Path
+
+
+def write_disparity_outputs(out_dir: Path, result, report) -> None:
+    """``disparity.pfm``, ``confidence.pfm`` and ``occlusion.png`` of a DisparityResult."""
+    from stereomesh.io.images import write_png
+    from stereomesh.io.pfm import write_pfm
+
+    write_pfm(out_dir / "disparity.pfm", result.disparity)
+    write_pfm(out_dir / "confidence.pfm", result.confidence)
+    write_png(out_dir / "occlusion.png", result.classes)
+    for name in ("disparity.pfm", "confidence.pfm", "occlusion.png"):
+        report.output(name.split(".")[0], out_dir / name)
+
+
+def write_disparity_previews(out_dir: Path, result, report) -> None:
+    """Rectified pair, disparity, confidence and occlusion-class previews."""
+    from stereomesh.io import previews
+    from stereomesh.io.images import to_uint8
+
+    pair, disparity = result.pair, result.disparity
+    pdir = out_dir / "previews"
+    previews.write_image_previews(pdir, pair.colour, to_uint8(pair.right), disparity.disparity,
+                                  disparity.confidence, disparity.classes)
+    report.output("previews", pdir)
+
+
+def write_mesh_preview(out_dir: Path, mesh, report) -> None:
+    """A shaded render of the mesh from the left camera, or a warning when none can be made."""
+    from stereomesh.io.previews import RendererUnavailable, render_mesh_png
+
+    try:
+        render_mesh_png(out_dir / "previews" / "mesh.png", mesh.vertices, mesh.faces, mesh.colors)
+    except RendererUnavailable as exc:  # no off-screen OpenGL here: the mesh is still good
+        report.warn(f"mesh preview not rendered: {exc}")
+
+
+def write_exports(out_dir: Path, result, report) -> None:
+    """The ``--format`` exports beyond ``mesh.ply`` and ``cloud.ply``."""
+    names = [name for name in result.params.export.formats if name != "ply"]
+    try:
+        from stereomesh.io import exporters
+    except ImportError:
+        for name in names:
+            report.warn(f"export format {name!r} is not available yet; skipped")
+        return
+    for name in names:
+        record = exporters.export(name, out_dir, mesh=result.mesh, cloud=result.cloud,
+                                  image=result.pair.colour, rig=result.pair.rig,
+                                  scale=result.scale)
+        report.data.setdefault("exports", {})[name] = record
+
+
+def write_outputs(out_dir: str | Path, result, report, *, previews: bool = True) -> None:
+    """Write everything a (possibly partial) reconstruction holds into ``out_dir``.
+
+    Parameters
+    ----------
+    out_dir : str or Path
+        Created if needed.
+    result : Reconstruction
+        From :func:`stereomesh.pipeline.reconstruct` or a ``StageFailed.partial``.
+    report : Report
+        Receives the output paths, the previews' timing and any warnings.
+    previews : bool
+        Also write the preview PNGs.
+    """
+    from stereomesh.io.ply import write_cloud_ply, write_mesh_ply
+
+    out_dir = Path(out_dir)
+    out_dir.mkdir(parents=True, exist_ok=True)
+    t = time.perf_counter()
+    if result.disparity is not None:
+        write_disparity_outputs(out_dir, result.disparity, report)
+    seconds = {"maps": time.perf_counter() - t}
+    if previews and result.disparity is not None:
+        t = time.perf_counter()
+        write_disparity_previews(out_dir, result, report)
+        seconds["previews"] = time.perf_counter() - t
+    complete = "repair" in result.figures
+    if result.cloud is not None and "filter_cloud" in result.figures:
+        t = time.perf_counter()
+        write_cloud_ply(out_dir / "cloud.ply", result.cloud, scale=result.scale)
+        report.output("cloud", out_dir / "cloud.ply")
+        seconds["cloud"] = time.perf_counter() - t
+    if result.mesh is not None and complete:
+        t = time.perf_counter()
+        write_mesh_ply(out_dir / "mesh.ply", result.mesh, scale=result.scale)
+        report.output("mesh", out_dir / "mesh.ply")
+        write_exports(out_dir, result, report)
+        seconds["mesh"] = time.perf_counter() - t
+        if previews:
+            t = time.perf_counter()
+            write_mesh_preview(out_dir, result.mesh, report)
+            seconds["previews"] = seconds.get("previews", 0.0) + time.perf_counter() - t
+    report.stage("export", sum(v for k, v in seconds.items() if k != "previews"),
+                 **({"faces": len(result.mesh.faces), "vertices": len(result.mesh.vertices)}
+                    if result.mesh is not None and complete else {}))
+    if "previews" in seconds:
+        report.stage("previews", seconds["previews"])
