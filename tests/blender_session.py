@@ -164,11 +164,22 @@ def _detect():
         message = str(exc)
     assert "/nonexistent/python3" in message
     p.python_path = ""
+    # Nothing to find: no variable, an empty PATH, no engine environment yet.
+    os.environ.pop("STEREOMESH_PYTHON", None)
+    saved_path, os.environ["PATH"] = os.environ.get("PATH", ""), os.path.dirname(RESULT)
+    try:
+        prefs.find_python()
+        raise AssertionError("an interpreter was found on an empty PATH")
+    except prefs.client.WorkerError as exc:
+        none_found = str(exc)
+    finally:
+        os.environ["PATH"] = saved_path
+    assert "Set Up Engine" in none_found, none_found
     os.environ["STEREOMESH_PYTHON"] = CORE_PYTHON
     found = prefs.find_python()
     assert os.path.samefile(found, CORE_PYTHON), found
     assert os.path.samefile(p.python_path, CORE_PYTHON)
-    return {"missing": message, "found": found}
+    return {"missing": message, "none_found": none_found, "found": found}
 
 
 @check("engine_setup_refuses_a_wrong_wheel")
@@ -284,6 +295,10 @@ def _cloud():
     assert obj.data.color_attributes.active_color is not None
     for name in ("confidence", "sigma_z", "pixel_col", "pixel_row"):
         assert name in obj.data.attributes, name
+    # Drawn as points by a geometry-nodes modifier; the data stays plain vertices.
+    assert [m.type for m in obj.modifiers] == ["NODES"], list(obj.modifiers)
+    nodes = {n.bl_idname for n in obj.modifiers[0].node_group.nodes}
+    assert "GeometryNodeMeshToPoints" in nodes, nodes
     state["cloud"] = obj.name
     return {"object": obj.name, "points": len(obj.data.vertices)}
 
