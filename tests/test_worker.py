@@ -207,3 +207,24 @@ def test_client_reports_a_crash_and_starts_a_new_worker(tmp_path, monkeypatch):
     assert second.submit("schema", {}).wait(timeout=120)["schema"]
     client.shutdown()
     assert second.proc.poll() is not None
+
+
+def test_client_cancel_ends_a_worker_that_does_not_stop_in_time(tmp_path):
+    client = _load_client()
+    first = client.get_client(sys.executable)
+    first.submit("schema", {}).wait(timeout=120)  # past the warm-up
+    # A cloud big enough that the outlier filter runs well past the grace period.
+    job = first.submit("cloud_from_pair", {**PAIR, "out_dir": str(tmp_path)}, FAST)
+    t = time.monotonic()
+
+    def cancel_once_running(fraction, message):
+        if fraction > 0:
+            job.cancel(grace=0.0)
+
+    with pytest.raises(client.WorkerError) as info:
+        job.wait(on_progress=cancel_once_running, timeout=300)
+    assert info.value.kind == "cancelled"
+    assert time.monotonic() - t < 60
+    second = client.get_client(sys.executable)
+    assert second.submit("schema", {}).wait(timeout=120)["schema"]
+    client.shutdown()

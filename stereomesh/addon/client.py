@@ -20,6 +20,12 @@ import time
 
 PROTOCOL = 1
 HELLO_TIMEOUT = 120.0
+CANCEL_GRACE = 5.0
+"""Seconds a cancelled job may take to stop before its worker is ended.
+
+The worker stops at its next progress report; a long library call (mesh repair)
+reports nothing for many seconds, so past this grace the process is killed and
+the next action starts a new one."""
 
 
 class WorkerError(Exception):
@@ -51,6 +57,8 @@ class Job:
         self.message = "starting the engine"
         self.result: dict | None = None
         self.error: WorkerError | None = None
+        self._cancel_at: float | None = None
+        self._grace = CANCEL_GRACE
 
     @property
     def done(self) -> bool:
@@ -59,7 +67,16 @@ class Job:
     def poll(self) -> bool:
         """Take the messages that arrived; True once the job has finished."""
         self.client._pump(block=False)
+        self._enforce_cancel()
         return self.done
+
+    def _enforce_cancel(self) -> None:
+        if self.done or self._cancel_at is None:
+            return
+        if time.monotonic() - self._cancel_at > self._grace:
+            self.client.kill()
+            self.error = WorkerError("cancelled", "cancelled (the engine was stopped; the "
+                                     "next action starts a new one)")
 
     def wait(self, on_progress=None, timeout: float | None = None) -> dict:
         """Block until the job ends; returns the result or raises :class:`WorkerError`."""
@@ -67,6 +84,7 @@ class Job:
         last = None
         while not self.done:
             self.client._pump(block=True, timeout=0.25)
+            self._enforce_cancel()
             if on_progress is not None and (self.fraction, self.message) != last:
                 last = (self.fraction, self.message)
                 on_progress(self.fraction, self.message)
@@ -77,9 +95,15 @@ class Job:
             raise self.error
         return self.result
 
-    def cancel(self) -> None:
-        """Ask the worker to stop this job at its next progress report."""
-        self.client._send({"action": "cancel", "id": self.id})
+    def cancel(self, grace: float = CANCEL_GRACE) -> None:
+        """Ask the worker to stop this job; end the worker if it takes over ``grace`` s."""
+        if self.done or self._cancel_at is not None:
+            return
+        self._cancel_at, self._grace = time.monotonic(), grace
+        try:
+            self.client._send({"action": "cancel", "id": self.id})
+        except OSError:
+            pass  # already gone: the job fails as a crash
 
 
 class WorkerClient:
@@ -165,6 +189,12 @@ class WorkerClient:
                 os.remove(self._log_path)
             except OSError:
                 pass
+
+    def kill(self) -> None:
+        """End the worker at once (a cancel it did not honour in time)."""
+        if self.alive():
+            self.proc.kill()
+            self.proc.wait()
 
     def _read(self, proc) -> None:
         for line in proc.stdout:

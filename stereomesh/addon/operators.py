@@ -106,7 +106,7 @@ class _WorkerAction:
 
     def modal(self, context, event):
         if event.type == "ESC" and event.value == "PRESS":
-            self._job.cancel()
+            self._job.cancel()  # ends the worker if it does not stop within a few seconds
             self._job.message = "cancelling"
         if event.type != "TIMER":
             return {"PASS_THROUGH"}
