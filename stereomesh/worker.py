@@ -8,8 +8,9 @@ Protocol (version :data:`PROTOCOL`)
 -----------------------------------
 Worker to host:
 
-- ``{"type": "hello", "protocol": 1, "version": "0.1.0", "pid": 123, "python": "3.11.7"}``
-  first, before anything is imported that could fail slowly;
+- ``{"type": "hello", "protocol": 1, "version": "0.1.0", "pid": 123, "python": "3.11.7",
+  "actions": [...]}`` first, as soon as the core's light modules are imported (the
+  kernels and the geometry libraries load after it, during the warm-up);
 - ``{"type": "progress", "id": ID, "step": str, "fraction": float, "message": str}``;
   ``id`` is ``null`` for the warm-up, whose message says whether the kernels are
   being compiled for the first time (over a minute on two cores) or loaded;
@@ -25,6 +26,29 @@ and ``args.out_dir`` the folder the result files go to; ``{"action": "cancel",
 "id": ID}`` at any time (read by a thread, so it stops a running action at its
 next progress report); ``{"action": "shutdown"}``. Closing stdin ends the worker
 after the requests already sent; a host that died is noticed at the next write.
+
+Actions, their ``args`` (besides ``out_dir``) and the ``files`` of their result:
+
+=====================  ======================================  ===========================
+action                 args                                    files
+=====================  ======================================  ===========================
+``mesh_from_pair``     ``inputs`` (paths), ``calib``,          ``mesh`` (+ ``cloud`` with
+                       ``layout``, ``swap``, ``with_cloud``    ``with_cloud``)
+``disparity``          as above                                ``disparity``, ``confidence``
+                                                               (PFM), ``occlusion``,
+                                                               ``disparity_view``,
+                                                               ``confidence_view`` (PNG)
+``cloud_from_pair``    as above, ``clean`` (default true)      ``cloud``
+``clean_cloud``        ``cloud`` (PLY)                         ``cloud``
+``surface_from_cloud`` ``cloud`` (PLY), ``calib`` (rig dict    ``mesh``
+                       or null), ``repair`` (default true)
+``fill_holes``         ``mesh`` (PLY)                          ``mesh``
+``schema``             none; the result has ``schema``         none
+=====================  ======================================  ===========================
+
+Pair results also carry ``rig`` (the rectified calibration), ``scale`` and
+``warnings``. Clouds travel with ``col``/``row`` pixel properties
+(:func:`stereomesh.io.ply.write_exchange_cloud_ply`).
 """
 
 from __future__ import annotations

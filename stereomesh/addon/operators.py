@@ -108,6 +108,7 @@ class _WorkerAction:
         if event.type == "ESC" and event.value == "PRESS":
             self._job.cancel()  # ends the worker if it does not stop within a few seconds
             self._job.message = "cancelling"
+            return {"RUNNING_MODAL"}  # the Esc is ours, not the editor's
         if event.type != "TIMER":
             return {"PASS_THROUGH"}
         if not self._job.poll():
