@@ -200,10 +200,6 @@ class _PairAction(_WorkerAction):
 
         return scene.find_or_place_camera(context, rig)
 
-    @staticmethod
-    def base_name(result: dict, path: str) -> str:
-        return Path(path).stem
-
 
 class STEREOMESH_OT_mesh_from_pair(_PairAction, bpy.types.Operator):
     """Run the whole pipeline on a stereo pair: a coloured, repaired mesh in metres"""
