@@ -228,3 +228,47 @@ def test_client_cancel_ends_a_worker_that_does_not_stop_in_time(tmp_path):
     second = client.get_client(sys.executable)
     assert second.submit("schema", {}).wait(timeout=120)["schema"]
     client.shutdown()
+
+
+def _load_addon_plyio():
+    spec = importlib.util.spec_from_file_location(
+        "stereomesh_addon_plyio", REPO / "stereomesh" / "addon" / "plyio.py")
+    module = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(module)
+    return module
+
+
+def test_addon_ply_files_and_core_ply_files_agree(tmp_path):
+    from stereomesh.geometry.data import PointCloud, TriMesh
+    from stereomesh.io.ply import write_mesh_ply
+
+    plyio = _load_addon_plyio()
+    rng = np.random.default_rng(0)
+    n = 50
+    fields = {"x": rng.random(n, np.float32), "y": rng.random(n, np.float32),
+              "z": rng.random(n, np.float32) + 1,
+              "red": rng.integers(0, 256, n).astype(np.uint8),
+              "green": rng.integers(0, 256, n).astype(np.uint8),
+              "blue": rng.integers(0, 256, n).astype(np.uint8),
+              "confidence": rng.random(n, np.float32), "sigma_z": rng.random(n, np.float32),
+              "filled": (rng.random(n) < 0.2).astype(np.uint8),
+              "col": rng.integers(0, 640, n).astype(np.int32),
+              "row": rng.integers(0, 480, n).astype(np.int32)}
+    faces = rng.integers(0, n, (30, 3)).astype(np.int32)
+    plyio.write_ply(tmp_path / "from_addon.ply", fields, faces)
+    mesh = read_mesh_ply(tmp_path / "from_addon.ply")
+    assert np.array_equal(mesh.faces, faces) and np.array_equal(mesh.filled, fields["filled"])
+    assert np.array_equal(mesh.colors[:, 1], fields["green"])
+    cloud = read_cloud_ply(tmp_path / "from_addon.ply")
+    assert np.array_equal(cloud.pixels, np.stack([fields["col"], fields["row"]], 1))
+    assert np.allclose(cloud.points[:, 2], fields["z"])
+
+    write_mesh_ply(tmp_path / "from_core.ply", TriMesh(
+        cloud.points, faces, cloud.colors, cloud.confidence, cloud.sigma_z, fields["filled"]))
+    back = plyio.read_ply(tmp_path / "from_core.ply")
+    assert np.array_equal(back["faces"], faces)
+    assert np.allclose(back["sigma_z"], fields["sigma_z"])
+    write_exchange_cloud_ply(tmp_path / "cloud.ply", PointCloud(
+        cloud.points, cloud.colors, cloud.confidence, cloud.sigma_z, pixels=cloud.pixels))
+    back = plyio.read_ply(tmp_path / "cloud.ply")
+    assert "faces" not in back and np.array_equal(back["row"], fields["row"])
