@@ -434,10 +434,26 @@ def _killed():
     return {"message": message, "old_pid": pid, "new_pid": second.pid}
 
 
+@check("engine_setup")
+def _engine_setup():
+    p = bpy.context.preferences.addons[MODULE].preferences
+    before = p.python_path
+    t = time.perf_counter()
+    assert bpy.ops.stereomesh.setup_engine(wheel=os.environ["STEREOMESH_TEST_WHEEL"]) \
+        == {"FINISHED"}
+    python = p.python_path
+    assert python != before and os.path.isfile(python), python
+    # The environment is the add-on's own, under the extension's user folder.
+    assert python.startswith(os.environ["BLENDER_USER_RESOURCES"]), python
+    p.python_path = before
+    return {"python": python, "seconds": round(time.perf_counter() - t, 1)}
+
+
 @check("unregister")
 def _unregister():
     client = sys.modules[MODULE + ".client"]
-    worker = client.current_client()
+    worker = client.get_client(CORE_PYTHON)  # running (the set-up stopped the last one)
+    assert worker.alive()
     bpy.ops.preferences.addon_disable(module=MODULE)
     assert not hasattr(bpy.types, "STEREOMESH_MT_stereo")
     assert worker.proc.wait(10) is not None, "the worker outlived the add-on"

@@ -61,13 +61,48 @@ def plugin_zip(tmp_path_factory):
 
 
 @pytest.fixture(scope="module")
-def session(bpy_python, plugin_zip, tmp_path_factory):
+def stand_in_wheel(tmp_path_factory):
+    """A dependency-free wheel named stereomesh with an importable ``stereomesh.worker``.
+
+    It lets the engine set-up run for real (venv, pip, the import check, the
+    preference) offline and in seconds; the real wheel would make pip fetch the
+    core's dependencies (gigabytes). It stands in for nothing the test checks.
+    """
+    import base64
+    import hashlib
+    import zipfile
+
+    files = {
+        "stereomesh/__init__.py": b"",
+        "stereomesh/worker.py": b"",
+        "stereomesh-0.0.0.dist-info/METADATA":
+            b"Metadata-Version: 2.1\nName: stereomesh\nVersion: 0.0.0\n",
+        "stereomesh-0.0.0.dist-info/WHEEL":
+            b"Wheel-Version: 1.0\nGenerator: test\nRoot-Is-Purelib: true\nTag: py3-none-any\n",
+    }
+    # The wheel format (PEP 427): RECORD lists every file with its urlsafe-base64 sha256.
+    record = []
+    for name, data in files.items():
+        digest = base64.urlsafe_b64encode(hashlib.sha256(data).digest()).rstrip(b"=")
+        record.append(f"{name},sha256={digest.decode()},{len(data)}")
+    record.append("stereomesh-0.0.0.dist-info/RECORD,,")
+    files["stereomesh-0.0.0.dist-info/RECORD"] = ("\n".join(record) + "\n").encode()
+    wheel = tmp_path_factory.mktemp("stand_in") / "stereomesh-0.0.0-py3-none-any.whl"
+    with zipfile.ZipFile(wheel, "w") as zf:
+        for name, data in files.items():
+            zf.writestr(name, data)
+    return wheel
+
+
+@pytest.fixture(scope="module")
+def session(bpy_python, plugin_zip, stand_in_wheel, tmp_path_factory):
     """Run the editor session once; returns its check records."""
     home = tmp_path_factory.mktemp("blender_user")
     result = home / "result.json"
     # Without BLENDER_USER_RESOURCES the install would write into the user's own config.
     env = {k: v for k, v in os.environ.items() if not k.startswith("PYTHON")}
     env["BLENDER_USER_RESOURCES"] = str(home / "resources")
+    env["STEREOMESH_TEST_WHEEL"] = str(stand_in_wheel)
     proc = subprocess.run(
         [str(bpy_python), str(REPO / "tests" / "blender_session.py"), str(plugin_zip),
          sys.executable, str(DEMO), str(result)],
@@ -134,6 +169,11 @@ def test_failures_become_messages_and_the_next_action_works(session):
     _assert(session, "bad_input")
     detail = _assert(session, "worker_killed")
     assert detail["old_pid"] != detail["new_pid"]
+
+
+def test_engine_set_up_creates_an_environment_and_points_at_it(session):
+    detail = _assert(session, "engine_setup")
+    assert detail["python"].endswith("python") and "engine" in detail["python"]
 
 
 def test_disabling_stops_the_worker(session):

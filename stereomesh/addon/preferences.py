@@ -123,22 +123,70 @@ class STEREOMESH_OT_setup_engine(bpy.types.Operator):
         if not self.base_python and sys.version_info < (3, 11):
             self.report({"ERROR"}, "the editor's Python is older than 3.11: pick a Base Python")
             return {"CANCELLED"}
-        venv = engine_dir() / "venv"
-        env = client.clean_environment()
-        steps = [[base, "-m", "venv", str(venv)],
-                 [str(_venv_python(venv)), "-m", "pip", "install", "--upgrade", wheel]]
-        for step in steps:
-            self.report({"INFO"}, "running: " + " ".join(step))
-            proc = subprocess.run(step, env=env, capture_output=True, text=True)
-            if proc.returncode != 0:
-                tail = (proc.stderr or proc.stdout).strip().splitlines()[-3:]
-                self.report({"ERROR"}, f"{step[2]} failed: {' | '.join(tail)}")
-                return {"CANCELLED"}
+        self._venv = engine_dir() / "venv"
+        python = str(_venv_python(self._venv))
+        # pip fetches the core's dependencies: minutes, so the interface path polls it.
+        self._steps = [("creating the environment", [base, "-m", "venv", str(self._venv)]),
+                       ("installing stereomesh and its dependencies",
+                        [python, "-m", "pip", "install", "--upgrade", wheel])]
+        if bpy.app.background:
+            for what, step in self._steps:
+                print(f"stereomesh: {what}: {' '.join(step)}", flush=True)
+                proc = subprocess.run(step, env=client.clean_environment(),
+                                      capture_output=True, text=True)
+                if proc.returncode != 0:
+                    return self._failed(what, proc.stdout + proc.stderr)
+            return self._finished()
+        self._proc, self._log = None, None
+        self._next_step()
+        wm = context.window_manager
+        self._timer = wm.event_timer_add(0.5, window=context.window)
+        wm.modal_handler_add(self)
+        return {"RUNNING_MODAL"}
+
+    def _next_step(self) -> None:
+        self._what, step = self._steps.pop(0)
+        import tempfile
+
+        self._log = tempfile.TemporaryFile(mode="w+", encoding="utf-8")
+        self._proc = subprocess.Popen(step, env=client.clean_environment(), stdout=self._log,
+                                      stderr=subprocess.STDOUT, text=True)
+
+    def modal(self, context, event):
+        if event.type != "TIMER":
+            return {"PASS_THROUGH"}
+        if self._proc.poll() is None:
+            if context.workspace is not None:
+                context.workspace.status_text_set(f"Stereo engine set-up: {self._what}…")
+            return {"RUNNING_MODAL"}
+        code = self._proc.returncode
+        self._log.seek(0)
+        output = self._log.read()
+        self._log.close()
+        if code == 0 and self._steps:
+            self._next_step()
+            return {"RUNNING_MODAL"}
+        context.window_manager.event_timer_remove(self._timer)
+        if context.workspace is not None:
+            context.workspace.status_text_set(None)
+        return self._finished() if code == 0 else self._failed(self._what, output)
+
+    def _failed(self, what: str, output: str):
+        tail = [ln for ln in output.strip().splitlines() if ln.strip()][-3:]
+        self.report({"ERROR"}, f"{what} failed: {' | '.join(tail)}")
+        return {"CANCELLED"}
+
+    def _finished(self):
+        python = str(_venv_python(self._venv))
+        if not _has_core(python):
+            self.report({"ERROR"}, f"{self._venv} was set up but stereomesh's worker does not "
+                        "import there; pick the stereomesh wheel built beside the add-on")
+            return {"CANCELLED"}
         prefs = get()
         if prefs is not None:
-            prefs.python_path = str(_venv_python(venv))
+            prefs.python_path = python
         client.shutdown()  # the next action starts the new engine
-        self.report({"INFO"}, f"engine installed in {venv}")
+        self.report({"INFO"}, f"engine installed in {self._venv}")
         return {"FINISHED"}
 
 
