@@ -1,10 +1,14 @@
 import json
+import os
 import subprocess
 import sys
 from pathlib import Path
 
 import numpy as np
 import pytest
+
+# The command sets this for itself (cli.configure_process); in-process tests do the same.
+os.environ.setdefault("NUMBA_THREADING_LAYER_PRIORITY", "omp tbb workqueue")
 
 REPO = Path(__file__).resolve().parent.parent
 DEMO = REPO / "demo_data"

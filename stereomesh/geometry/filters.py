@@ -190,12 +190,15 @@ def filter_cloud(
     """Clean a triangulated cloud and give it camera-facing normals.
 
     Steps, in order: keep depths ``z`` in ``[depth_min, depth_max]``; keep
-    ``confidence >= cloud_min_confidence``; Open3D statistical outlier removal
+    ``confidence >= cloud_min_confidence``; statistical outlier removal (over grid
+    neighbours for an organised cloud, see :mod:`stereomesh.geometry.organised`;
+    else Open3D's)
     (mean distance to ``outlier_neighbors`` neighbours beyond
     ``outlier_std_ratio`` standard deviations of the cloud's mean is
     removed); optional Open3D radius outlier removal (fewer than
     ``radius_min_points`` neighbours within ``radius``); optional voxel
-    averaging; normal estimation oriented toward the camera at the origin.
+    averaging; normal estimation oriented toward the camera at the origin (grid
+    gradients for an organised cloud, averaged by the voxels; else Open3D plane fits).
 
     Parameters
     ----------
@@ -259,15 +262,24 @@ def filter_cloud(
     if cloud_min_confidence > 0:
         cloud = cloud.subset(cloud.confidence >= cloud_min_confidence)
     counts["after_confidence"] = len(cloud)
-    cloud = cloud.subset(
-        _statistical_keep(cloud.points, outlier_neighbors, outlier_std_ratio)
-    )
+    from stereomesh.geometry.organised import grid_normals, grid_outlier_keep, is_organised
+
+    # Points from one disparity map find their neighbours on the image grid.
+    organised = is_organised(cloud)
+    if organised:
+        keep = grid_outlier_keep(cloud, outlier_neighbors, outlier_std_ratio)
+    else:
+        keep = _statistical_keep(cloud.points, outlier_neighbors, outlier_std_ratio)
+    cloud = cloud.subset(keep)
     counts["after_statistical"] = len(cloud)
     if radius is not None and radius_min_points > 0:
         cloud = cloud.subset(_radius_keep(cloud.points, radius, radius_min_points))
     counts["after_radius"] = len(cloud)
+    if organised and normal_radius is None:
+        cloud = _with(cloud, normals=grid_normals(cloud))
     if voxel_size > 0:
         cloud = voxel_average(cloud, voxel_size)
     counts["after_voxel"] = len(cloud)
-    cloud = estimate_normals(cloud, radius=normal_radius, max_neighbors=normal_neighbors)
+    if cloud.normals is None:
+        cloud = estimate_normals(cloud, radius=normal_radius, max_neighbors=normal_neighbors)
     return cloud, counts
