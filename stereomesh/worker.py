@@ -220,14 +220,18 @@ class Worker:
         try:
             import numpy as np
 
-            from stereomesh.matching.disparity import compute_disparity
-            from stereomesh.params import DisparityParams
+            from stereomesh.params import Params
+            from stereomesh.pipeline import StereoPair
+            from stereomesh.rectify import RectifiedRig
 
-            # Through the worker's own workspace: the kernels it selects are those a
-            # request runs, so nothing is left to compile or load when one arrives.
-            image = np.random.default_rng(0).integers(0, 255, (24, 80, 3), dtype=np.uint8)
-            compute_disparity(image, image, DisparityParams(disp_range="0:32", speckle_size=0),
-                              workspace=self._workspace_for())
+            # A tiny pair through the worker's own workspace up to the cleaned cloud: the
+            # disparity and cloud kernels a request selects are then compiled or loaded,
+            # and the geometry libraries imported, before one arrives.
+            right = np.random.default_rng(0).integers(0, 255, (48, 96, 3), dtype=np.uint8)
+            pair = StereoPair(np.roll(right, 8, axis=1), right,
+                              RectifiedRig(focal_px=100.0, cx=48.0, cy=24.0, baseline=0.1))
+            reconstruct(pair, Params().with_overrides({"disp_range": "0:32"}),
+                        workspace=self._workspace_for(), stop_after="filter_cloud")
             self._out.send(type="progress", id=None, step="warm-up", fraction=0.8,
                            message="loading the geometry libraries")
             import open3d  # noqa: F401  (first import takes seconds; pay it before a request)
