@@ -71,6 +71,10 @@ def _build_parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser("demo", help="render the demo scene's pair and run the pipeline on it")
     common(p)
+
+    p = sub.add_parser("worker", help="serve the editor plugin: JSON lines on stdin/stdout")
+    p.add_argument("--no-warm-up", action="store_true",
+                   help="do not load the kernels right after the handshake")
     return parser
 
 
@@ -149,6 +153,12 @@ def _cmd_demo(args) -> int:
     return EXIT_OK
 
 
+def _cmd_worker(args) -> int:
+    from stereomesh.worker import main as worker_main
+
+    return worker_main(["--no-warm-up"] if args.no_warm_up else [])
+
+
 def configure_process() -> None:
     """Process-wide settings of a command (never made on ``import stereomesh``).
 
@@ -188,7 +198,8 @@ def main(argv: list[str] | None = None) -> int:
     parser = _build_parser()
     args = parser.parse_args(argv)
     configure_process()
-    commands = {"disparity": _cmd_disparity, "run": _cmd_run, "demo": _cmd_demo}
+    commands = {"disparity": _cmd_disparity, "run": _cmd_run, "demo": _cmd_demo,
+                "worker": _cmd_worker}
     try:
         return commands[args.command](args)
     except InputError as exc:

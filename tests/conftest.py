@@ -46,3 +46,6 @@ def motorcycle(tmp_path_factory):
     (folder / "calib.json").write_text(json.dumps(calib))
     gt = np.where(np.isfinite(gt), gt, np.nan).astype(np.float32)
     return {"dir": folder, "left": left, "right": right, "gt": gt}
+
+# Run by the bpy venv's interpreter (tests/test_plugin.py), never imported here.
+collect_ignore = ["blender_session.py"]

@@ -278,3 +278,146 @@ def read_ply(path: str | os.PathLike) -> dict[str, np.ndarray]:
             for p in props:
                 out[p[0]] = arr[p[0]].astype(arr[p[0]].dtype.newbyteorder("="))
     return out
+
+
+def write_exchange_cloud_ply(path: str | os.PathLike, cloud, *, scale: str = "metric") -> None:
+    """Write a cloud as :func:`write_cloud_ply` does, plus its source pixels.
+
+    The editor plugin keeps each point's left-image pixel so that a cloud edited
+    in the editor can still be meshed as a depth grid. The pixel travels as two
+    extra vertex properties, ``col`` and ``row`` (int), after the standard ones;
+    readers that ignore unknown properties read the file as a plain cloud.
+
+    Parameters
+    ----------
+    path : str or path-like
+        Target file; written atomically.
+    cloud : PointCloud
+        Without ``pixels`` the file is exactly :func:`write_cloud_ply`'s.
+    scale : str
+        ``"metric"`` or ``"unscaled"``, stated in the header as :func:`write_cloud_ply` does.
+
+    Examples
+    --------
+    >>> import numpy as np, tempfile, pathlib
+    >>> from stereomesh.geometry.data import PointCloud
+    >>> pc = PointCloud(np.ones((2, 3)), np.zeros((2, 3), np.uint8), np.ones(2, np.float32),
+    ...                 np.zeros(2, np.float32), pixels=np.array([[3, 4], [5, 6]]))
+    >>> p = pathlib.Path(tempfile.mkdtemp()) / "c.ply"
+    >>> write_exchange_cloud_ply(p, pc)
+    >>> read_cloud_ply(p).pixels.tolist()
+    [[3, 4], [5, 6]]
+    """
+    if cloud.pixels is None:
+        write_cloud_ply(path, cloud, scale=scale)
+        return
+    n = len(cloud)
+    base = _vertex_records(cloud.points, cloud.normals, cloud.colors, cloud.confidence,
+                           cloud.sigma_z, np.zeros(n, np.uint8))
+    dtype = np.dtype(base.dtype.descr + [("col", "<i4"), ("row", "<i4")])
+    rec = np.empty(n, dtype)
+    for name in base.dtype.names:
+        rec[name] = base[name]
+    rec["col"], rec["row"] = cloud.pixels[:, 0], cloud.pixels[:, 1]
+    header = _header(n, None, "stereomesh point cloud", scale).decode("ascii")
+    header = header.replace("end_header\n", "property int col\nproperty int row\nend_header\n")
+    _write(path, header.encode("ascii"), rec, None)
+
+
+def _vertex_fields(data: dict[str, np.ndarray], path: Path):
+    """Positions, colours, confidence, sigma_z, normals of a read PLY, with defaults."""
+    missing = [k for k in ("x", "y", "z") if k not in data]
+    if missing:
+        raise InputError(f"{path}: PLY vertices lack {', '.join(missing)}; give a point file")
+    points = np.stack([data["x"], data["y"], data["z"]], axis=1).astype(np.float64)
+    n = len(points)
+    if all(k in data for k in ("red", "green", "blue")):
+        colors = np.stack([data["red"], data["green"], data["blue"]], axis=1)
+        if colors.dtype != np.uint8:  # 16-bit or float colours: bring them to bytes
+            top = 65535.0 if np.issubdtype(colors.dtype, np.integer) and colors.max() > 255 \
+                else (1.0 if np.issubdtype(colors.dtype, np.floating) else 255.0)
+            colors = np.clip(colors / top * 255.0 + 0.5, 0, 255).astype(np.uint8)
+    else:
+        colors = np.full((n, 3), 200, np.uint8)
+    confidence = data.get("confidence", np.ones(n, np.float32))
+    sigma_z = data.get("sigma_z", np.zeros(n, np.float32))
+    normals = None
+    if all(k in data for k in ("nx", "ny", "nz")):
+        normals = np.stack([data["nx"], data["ny"], data["nz"]], axis=1)
+    return points, colors, confidence, sigma_z, normals
+
+
+def read_cloud_ply(path: str | os.PathLike):
+    """Read a binary PLY's vertices as a :class:`~stereomesh.geometry.data.PointCloud`.
+
+    Parameters
+    ----------
+    path : str or path-like
+        Needs ``x y z``; colours default to light grey, ``confidence`` to 1,
+        ``sigma_z`` to 0; ``col``/``row`` become ``pixels`` when present. Faces
+        are ignored.
+
+    Returns
+    -------
+    PointCloud
+
+    Raises
+    ------
+    InputError
+        If the file is not a readable binary PLY with vertex positions.
+
+    Examples
+    --------
+    See :func:`write_exchange_cloud_ply`.
+    """
+    from stereomesh.geometry.data import PointCloud
+
+    path = Path(path)
+    data = read_ply(path)
+    points, colors, confidence, sigma_z, normals = _vertex_fields(data, path)
+    pixels = None
+    if "col" in data and "row" in data:
+        pixels = np.stack([data["col"], data["row"]], axis=1).astype(np.int32)
+    return PointCloud(points, colors, confidence, sigma_z, normals=normals, pixels=pixels)
+
+
+def read_mesh_ply(path: str | os.PathLike):
+    """Read a binary triangle PLY as a :class:`~stereomesh.geometry.data.TriMesh`.
+
+    Parameters
+    ----------
+    path : str or path-like
+        Vertex fields as in :func:`read_cloud_ply`; ``filled`` defaults to 0.
+
+    Returns
+    -------
+    TriMesh
+
+    Raises
+    ------
+    InputError
+        If the file has no vertex positions or its faces are not triangles.
+
+    Examples
+    --------
+    >>> import numpy as np, tempfile, pathlib
+    >>> from stereomesh.geometry.data import TriMesh
+    >>> m = TriMesh(np.eye(3), np.array([[0, 1, 2]]), np.zeros((3, 3), np.uint8),
+    ...             np.ones(3, np.float32), np.zeros(3, np.float32), np.array([0, 1, 0], np.uint8))
+    >>> p = pathlib.Path(tempfile.mkdtemp()) / "m.ply"
+    >>> write_mesh_ply(p, m)
+    >>> read_mesh_ply(p).filled.tolist()
+    [0, 1, 0]
+    """
+    from stereomesh.geometry.data import TriMesh
+
+    path = Path(path)
+    data = read_ply(path)
+    points, colors, confidence, sigma_z, normals = _vertex_fields(data, path)
+    faces = data.get("faces", np.zeros((0, 3), np.int32))
+    if faces.ndim != 2 or (faces.size and faces.shape[1] != 3):
+        raise InputError(f"{path}: faces have {faces.shape[1]} corners; triangulate the mesh")
+    if faces.size and (faces.min() < 0 or faces.max() >= len(points)):
+        raise InputError(f"{path}: faces index vertices that do not exist")
+    filled = data.get("filled", np.zeros(len(points), np.uint8)).astype(np.uint8)
+    return TriMesh(points, faces, colors, confidence, sigma_z, filled, normals=normals)
