@@ -30,11 +30,35 @@ def _progress_bar(quiet: bool):
     return update, bar.close
 
 
-def _params(args, sections):
-    from stereomesh.params import Params, cli_overrides, load_config
+def _say_if_compiling(quiet: bool) -> None:
+    """Tell the user why the first run after an install takes a minute or two."""
+    if quiet:
+        return
+    from stereomesh.matching.disparity import kernels_cached
 
-    base = load_config(args.config) if getattr(args, "config", None) else Params()
+    if not kernels_cached():
+        print("stereomesh: compiling the matching kernels, once per install "
+              "(a minute or two on a 2-core machine)...", file=sys.stderr, flush=True)
+
+
+def _params(args, sections):
+    from stereomesh.params import Params, cli_overrides, load_config, load_preset
+
+    # Schema defaults < preset < config file < flags typed on the command line.
+    base = load_preset(args.preset) if getattr(args, "preset", None) else Params()
+    if getattr(args, "config", None):
+        base = load_config(args.config, base)
     return base.with_overrides(cli_overrides(args, sections), source="command line")
+
+
+def _preset_argument(parser) -> None:
+    from stereomesh.params import preset_names
+
+    parser.add_argument(
+        "--preset", choices=preset_names(),
+        help="parameters for a kind of job: facade (open, honest surfaces for survey), "
+             "catalogue (closed objects), archive (robust unattended conversion); "
+             "--config and flags override it")
 
 
 def _build_parser() -> argparse.ArgumentParser:
@@ -56,6 +80,7 @@ def _build_parser() -> argparse.ArgumentParser:
     p.add_argument("right", type=Path, help="right image")
     p.add_argument("--calib", type=Path, required=True, help="calibration JSON")
     p.add_argument("--config", type=Path, help="TOML file of parameters")
+    _preset_argument(p)
     p.add_argument("--previews", action="store_true",
                    help="also write preview PNGs (rectified pair, disparity, confidence, classes)")
     common(p)
@@ -65,6 +90,7 @@ def _build_parser() -> argparse.ArgumentParser:
     p.add_argument("inputs", nargs="+", type=Path, help="LEFT RIGHT image files")
     p.add_argument("--calib", type=Path, help="calibration JSON")
     p.add_argument("--config", type=Path, help="TOML file of parameters")
+    _preset_argument(p)
     common(p)
     for section in SECTIONS:
         add_cli_arguments(p.add_argument_group(f"{section} parameters"), (section,))
@@ -93,6 +119,7 @@ def _cmd_disparity(args) -> int:
     from stereomesh.jobs import run_job
 
     params = _params(args, ("disparity",))
+    _say_if_compiling(args.quiet)
     progress, close = _progress_bar(args.quiet)
     try:
         report = run_job([args.left, args.right], args.calib, args.out, params,
@@ -110,6 +137,7 @@ def _cmd_run(args) -> int:
     from stereomesh.params import SECTIONS
 
     params = _params(args, tuple(SECTIONS))
+    _say_if_compiling(args.quiet)
     progress, close = _progress_bar(args.quiet)
     try:
         report = run_job(args.inputs, args.calib, args.out, params, progress=progress)
@@ -140,6 +168,7 @@ def _cmd_demo(args) -> int:
     data = demo_inputs(args.out)
     # The scene's own parameters (its disparity range) come with the scene.
     params = load_config(data / "params.toml")
+    _say_if_compiling(args.quiet)
     progress, close = _progress_bar(args.quiet)
     try:
         report = run_job([data / "left.png", data / "right.png"], data / "calib.json",

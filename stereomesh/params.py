@@ -322,6 +322,25 @@ def load_config(path: str | Path, base: Params | None = None) -> Params:
     return (base or Params()).with_overrides(overrides, source=str(path))
 
 
+def preset_names() -> tuple[str, ...]:
+    """The presets shipped in ``stereomesh/presets/`` (one TOML config each)."""
+    folder = Path(__file__).resolve().parent / "presets"
+    return tuple(sorted(p.stem for p in folder.glob("*.toml")))
+
+
+def load_preset(name: str, base: Params | None = None) -> Params:
+    """Parameters of a shipped preset (``facade``, ``catalogue``, ``archive``...).
+
+    Examples
+    --------
+    >>> load_preset("catalogue").surface.surface
+    'poisson'
+    """
+    if name not in preset_names():
+        raise InputError(f"--preset {name!r} is not one of {', '.join(preset_names())}")
+    return load_config(Path(__file__).resolve().parent / "presets" / f"{name}.toml", base)
+
+
 def schema() -> list[dict[str, Any]]:
     """The schema as plain data (for the plugin's properties and the docs)."""
     rows = []

@@ -63,7 +63,7 @@ import traceback
 from pathlib import Path
 
 from stereomesh import __version__
-from stereomesh.errors import InputError
+from stereomesh.errors import Cancelled, InputError
 from stereomesh.io.inputs import read_stereo_input
 from stereomesh.pipeline import (
     StageFailed,
@@ -72,14 +72,6 @@ from stereomesh.pipeline import (
     repair_surface,
     surface_from_cloud,
 )
-
-try:  # the in-memory core brings its own; until then the worker defines it
-    from stereomesh.errors import Cancelled
-except ImportError:  # pragma: no cover - depends on the core's version
-
-    class Cancelled(Exception):  # noqa: N818  (the core's name)
-        """Raised by a progress callback to stop a run."""
-
 
 PROTOCOL = 1
 

@@ -377,3 +377,14 @@ def test_confidence_ranks_errors_on_real_photographs(motorcycle):
     assert sparsification_auc(err, conf) < 0.6 * err.mean()
     bad = (err > 2.0).astype(float)
     assert sparsification_auc(bad, conf) < 0.4 * bad.mean()
+
+
+def test_first_run_says_it_compiles(tmp_path, monkeypatch):
+    # With an empty numba cache the command says why the first run is slow.
+    from stereomesh.matching.disparity import kernels_cached
+
+    monkeypatch.setenv("NUMBA_CACHE_DIR", str(tmp_path / "cache"))
+    assert not kernels_cached()
+    (tmp_path / "cache" / "x").mkdir(parents=True)
+    (tmp_path / "cache" / "x" / "_sgm_kernels.sgm_solve-1.py311.nbi").write_bytes(b"")
+    assert kernels_cached()

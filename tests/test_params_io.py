@@ -76,3 +76,19 @@ def test_atomic_write_leaves_target_on_failure(tmp_path):
         raise RuntimeError("boom")
     assert target.read_text() == "old"
     assert list(tmp_path.iterdir()) == [target]
+
+
+def test_presets_load_and_flags_override_them(tmp_path):
+    from stereomesh import cli
+    from stereomesh.params import load_preset, preset_names
+
+    assert set(preset_names()) == {"facade", "catalogue", "archive"}
+    for name in preset_names():
+        load_preset(name)  # every preset passes the schema's checks
+    args = cli._build_parser().parse_args(
+        ["run", "a.png", "b.png", "--out", str(tmp_path), "--preset", "catalogue",
+         "--poisson-depth", "8"])
+    from stereomesh.params import SECTIONS
+
+    params = cli._params(args, tuple(SECTIONS))
+    assert params.surface.surface == "poisson" and params.surface.poisson_depth == 8

@@ -293,6 +293,23 @@ def warm_up(params: DisparityParams | None = None) -> None:
     compute_disparity(image, image, small)
 
 
+def kernels_cached() -> bool:
+    """Whether compiled disparity kernels are on disk (else the first call compiles them).
+
+    numba keeps an index file per cached function in ``__pycache__`` beside the
+    module, or under ``NUMBA_CACHE_DIR``. A stale index (after a source edit)
+    still counts as cached here, so this can only miss a recompile, never
+    announce one that does not happen.
+    """
+    import os
+    from pathlib import Path
+
+    here = Path(__file__).resolve().parent
+    custom = os.environ.get("NUMBA_CACHE_DIR")
+    folders = [Path(custom)] if custom else [here / "__pycache__"]
+    return any(any(folder.rglob("_sgm_kernels.*.nbi")) for folder in folders if folder.is_dir())
+
+
 def _zero_energy() -> dict:
     return {"unary": 0.0, "pairwise": 0.0, "total": 0.0}
 
