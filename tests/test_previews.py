@@ -53,3 +53,23 @@ def test_render_mesh_png_without_colours_and_bad_input(tmp_path):
         render_mesh_png(tmp_path / "x.png", mesh.vertices, mesh.faces, mesh.colors[:-1])
     with pytest.raises(ValueError):
         render_mesh_png(tmp_path / "x.png", mesh.vertices, np.zeros((0, 3), int))
+
+
+def test_map_previews_carry_colour_bars_and_a_legend(tmp_path):
+    from stereomesh.io.previews import write_image_previews
+
+    h, w = 40, 64
+    disp = np.tile(np.linspace(10, 30, w, dtype=np.float32), (h, 1))
+    disp[:5] = np.nan
+    conf = np.where(np.isfinite(disp), 0.8, 0.0).astype(np.float32)
+    classes = np.where(np.isfinite(disp), 0, 4).astype(np.uint8)
+    img = np.zeros((h, w, 3), np.uint8)
+    rig = RectifiedRig(focal_px=60.0, cx=w / 2, cy=h / 2, baseline=0.1, image_size=(w, h))
+    paths = write_image_previews(tmp_path, img, img, disp, conf, classes, rig=rig)
+    for name in ("disparity", "confidence", "depth", "occlusion_classes"):
+        shown = np.asarray(Image.open(paths[name]).convert("RGB"))
+        assert shown.shape[1] == w and shown.shape[0] > h, name  # a strip below the map
+        assert (shown[h:] == 0).any(), name  # text or swatches drawn in the strip
+    # Near is warm in both maps: the right side has the larger disparity.
+    depth = np.asarray(Image.open(paths["depth"]).convert("RGB")).astype(int)
+    assert depth[20, -2, 0] > depth[20, 1, 0]

@@ -40,7 +40,7 @@ def write_disparity_previews(out_dir: Path, result, report) -> None:
     pair, disparity = result.pair, result.disparity
     pdir = out_dir / "previews"
     previews.write_image_previews(pdir, pair.colour, to_uint8(pair.right), disparity.disparity,
-                                  disparity.confidence, disparity.classes)
+                                  disparity.confidence, disparity.classes, rig=pair.rig)
     report.output("previews", pdir)
 
 

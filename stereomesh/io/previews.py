@@ -182,20 +182,100 @@ OCCLUSION_PREVIEW_COLOURS = np.array(
 """RGB colour of each occlusion class in ``previews/occlusion_classes.png``."""
 
 
-def disparity_preview(disparity: np.ndarray) -> np.ndarray:
-    """Colour-mapped disparity (near is warm), black where NaN; (H, W, 3) uint8."""
+def _turbo(values: np.ndarray) -> np.ndarray:
+    """(..., 3) uint8 RGB of ``values`` in [0, 1] through OpenCV's turbo colour map."""
     import cv2
 
+    grey = np.clip(np.asarray(values) * 255, 0, 255).astype(np.uint8)
+    shape = grey.shape
+    rgb = cv2.cvtColor(cv2.applyColorMap(grey.reshape(-1, 1), cv2.COLORMAP_TURBO),
+                       cv2.COLOR_BGR2RGB)
+    return rgb.reshape(*shape, 3)
+
+
+def _scaled(values: np.ndarray) -> tuple[np.ndarray, float, float]:
+    valid = np.isfinite(values)
+    if not valid.any():
+        return np.zeros(values.shape), 0.0, 1.0
+    lo, hi = (float(v) for v in np.percentile(values[valid], [1, 99]))
+    return np.clip((values - lo) / max(hi - lo, 1e-6), 0, 1), lo, hi
+
+
+def disparity_preview(disparity: np.ndarray) -> np.ndarray:
+    """Colour-mapped disparity (near is warm), black where NaN; (H, W, 3) uint8."""
     disparity = np.asarray(disparity, np.float32)
     valid = np.isfinite(disparity)
-    out = np.zeros((*disparity.shape, 3), np.uint8)
-    if valid.any():
-        lo, hi = np.percentile(disparity[valid], [1, 99])
-        scaled = np.clip((disparity - lo) / max(hi - lo, 1e-6), 0, 1)
-        grey = np.where(valid, scaled * 255, 0).astype(np.uint8)
-        out = cv2.cvtColor(cv2.applyColorMap(grey, cv2.COLORMAP_TURBO), cv2.COLOR_BGR2RGB)
-        out[~valid] = 0
+    scaled, _, _ = _scaled(disparity)
+    out = _turbo(np.where(valid, scaled, 0))
+    out[~valid] = 0
     return out
+
+
+def _font(size: int):
+    from PIL import ImageFont
+
+    try:
+        return ImageFont.load_default(size=size)
+    except TypeError:  # Pillow before 10.1 has one fixed-size default font
+        return ImageFont.load_default()
+
+
+def _strip(image: np.ndarray, height: int):
+    from PIL import Image, ImageDraw
+
+    h, w = image.shape[:2]
+    canvas = Image.new("RGB", (w, h + height), (255, 255, 255))
+    canvas.paste(Image.fromarray(np.ascontiguousarray(image)), (0, 0))
+    return canvas, ImageDraw.Draw(canvas), h
+
+
+def with_colour_bar(image: np.ndarray, lo: float, hi: float, label: str,
+                    colours: np.ndarray) -> np.ndarray:
+    """``image`` with a colour bar below it: ``colours`` (256, 3) from ``lo`` to ``hi``.
+
+    Parameters
+    ----------
+    image : (H, W, 3) uint8
+    lo, hi : float
+        Values at the bar's ends, in the unit named by ``label``.
+    label : str
+        What the colours mean, with the unit (``"depth, m"``).
+    colours : (256, 3) uint8
+        The colour map, low to high.
+
+    Returns
+    -------
+    (H + 44, W, 3) uint8
+    """
+    canvas, draw, h = _strip(image, 44)
+    w = image.shape[1]
+    x0, x1 = 8, max(9, w - 8)
+    ramp = colours[np.linspace(0, 255, x1 - x0).astype(int)]
+    bar = np.repeat(ramp[None], 12, axis=0)
+    from PIL import Image
+
+    canvas.paste(Image.fromarray(np.ascontiguousarray(bar)), (x0, h + 4))
+    font = _font(12)
+    draw.text((x0, h + 18), f"{lo:.3g}", fill=(0, 0, 0), font=font)
+    end = f"{hi:.3g}"
+    draw.text((x1 - draw.textlength(end, font=font), h + 18), end, fill=(0, 0, 0), font=font)
+    draw.text(((x0 + x1 - draw.textlength(label, font=font)) / 2, h + 28), label,
+              fill=(0, 0, 0), font=font)
+    return np.asarray(canvas)
+
+
+def with_legend(image: np.ndarray, entries: list[tuple[tuple[int, int, int], str]]
+                ) -> np.ndarray:
+    """``image`` with a legend below it: a colour swatch and a name per entry."""
+    font = _font(12)
+    rows = len(entries)
+    canvas, draw, h = _strip(image, 8 + 16 * rows)
+    for i, (colour, name) in enumerate(entries):
+        y = h + 4 + 16 * i
+        draw.rectangle([8, y, 20, y + 11], fill=tuple(int(c) for c in colour),
+                       outline=(0, 0, 0))
+        draw.text((26, y - 1), name, fill=(0, 0, 0), font=font)
+    return np.asarray(canvas)
 
 
 def rectified_pair_preview(left: np.ndarray, right: np.ndarray, lines: int = 16) -> np.ndarray:
@@ -210,6 +290,13 @@ def rectified_pair_preview(left: np.ndarray, right: np.ndarray, lines: int = 16)
     return pair
 
 
+OCCLUSION_LEGEND = ("valid", "occluded (seen by the left camera only)",
+                    "mismatch (failed the left-right check)",
+                    "rejected by a filter (confidence, speckle)",
+                    "outside the search range or the image overlap")
+"""Legend text of the occlusion classes 0–4 (the codes of ``occlusion.png``)."""
+
+
 def write_image_previews(
     folder: Path,
     left: np.ndarray,
@@ -217,8 +304,14 @@ def write_image_previews(
     disparity: np.ndarray,
     confidence: np.ndarray,
     classes: np.ndarray,
+    rig=None,
 ) -> dict[str, Path]:
-    """Write the rectified pair, disparity, confidence and occlusion-class previews."""
+    """Write the rectified pair and the disparity, depth, confidence and class previews.
+
+    Each map carries a colour bar with its unit (disparity in pixels, depth in
+    metres or unscaled units, confidence 0–1) or a legend (occlusion classes).
+    The depth preview needs the ``rig``.
+    """
     from stereomesh.io.images import write_png
 
     folder = Path(folder)
@@ -228,8 +321,28 @@ def write_image_previews(
         "confidence": folder / "confidence.png",
         "occlusion_classes": folder / "occlusion_classes.png",
     }
+    turbo = _turbo(np.linspace(0, 1, 256))
     write_png(paths["rectified_pair"], rectified_pair_preview(left, right))
-    write_png(paths["disparity"], disparity_preview(disparity))
-    write_png(paths["confidence"], (np.clip(confidence, 0, 1) * 255).astype(np.uint8))
-    write_png(paths["occlusion_classes"], OCCLUSION_PREVIEW_COLOURS[np.minimum(classes, 4)])
+    _, lo, hi = _scaled(np.asarray(disparity, np.float32))
+    write_png(paths["disparity"], with_colour_bar(disparity_preview(disparity), lo, hi,
+                                                  "disparity, pixels (near is warm)", turbo))
+    grey = (np.clip(confidence, 0, 1) * 255).astype(np.uint8)
+    ramp = np.repeat(np.arange(256, dtype=np.uint8)[:, None], 3, axis=1)
+    write_png(paths["confidence"], with_colour_bar(np.repeat(grey[..., None], 3, axis=2),
+                                                   0.0, 1.0, "confidence (0 where rejected)",
+                                                   ramp))
+    entries = [(tuple(c), f"{k} {name}") for k, (c, name)
+               in enumerate(zip(OCCLUSION_PREVIEW_COLOURS, OCCLUSION_LEGEND, strict=True))]
+    write_png(paths["occlusion_classes"],
+              with_legend(OCCLUSION_PREVIEW_COLOURS[np.minimum(classes, 4)], entries))
+    if rig is not None:
+        depth = rig.depth_from_disparity(disparity)
+        valid = np.isfinite(depth)
+        scaled, dlo, dhi = _scaled(depth)
+        # Near is warm, as in the disparity preview.
+        image = _turbo(np.where(valid, 1.0 - scaled, 0))
+        image[~valid] = 0
+        unit = "m" if rig.metric else "unscaled units"
+        paths["depth"] = folder / "depth.png"
+        write_png(paths["depth"], with_colour_bar(image, dhi, dlo, f"depth, {unit}", turbo))
     return paths
