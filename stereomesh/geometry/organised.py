@@ -171,7 +171,7 @@ def grid_normals(cloud: PointCloud, radius: int = 2) -> np.ndarray:
     >>> pts = np.c_[cols.ravel() * 0.01, rows.ravel() * 0.01, np.full(81, 2.0)]
     >>> pc = PointCloud(pts, np.zeros((81, 3), np.uint8), np.ones(81, np.float32),
     ...                 np.zeros(81, np.float32), pixels=np.c_[cols.ravel(), rows.ravel()])
-    >>> np.round(grid_normals(pc)[40], 3).tolist()   # facing the camera
+    >>> (np.round(grid_normals(pc)[40], 3) + 0.0).tolist()   # facing the camera
     [0.0, 0.0, -1.0]
     """
     from stereomesh.geometry import _grid_kernels
