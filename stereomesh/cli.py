@@ -61,6 +61,16 @@ def _preset_argument(parser) -> None:
              "--config and flags override it")
 
 
+def _input_arguments(p) -> None:
+    """Flags saying how the input files hold the two views."""
+    from stereomesh.io.inputs import READERS
+
+    p.add_argument("--layout", choices=sorted(READERS), default=None,
+                   help="how the views are stored (default: two files, or mpo for one .mpo)")
+    p.add_argument("--swap", action="store_true",
+                   help="the first view is the right one (cross-eyed order)")
+
+
 def _build_parser() -> argparse.ArgumentParser:
     from stereomesh.params import SECTIONS, add_cli_arguments
 
@@ -87,8 +97,11 @@ def _build_parser() -> argparse.ArgumentParser:
     add_cli_arguments(p.add_argument_group("disparity parameters"), ("disparity",))
 
     p = sub.add_parser("run", help="the whole pipeline: pair in, mesh and report out")
-    p.add_argument("inputs", nargs="+", type=Path, help="LEFT RIGHT image files")
-    p.add_argument("--calib", type=Path, help="calibration JSON")
+    p.add_argument("inputs", nargs="+", type=Path,
+                   help="LEFT RIGHT image files, one MPO file, or one side-by-side scan")
+    p.add_argument("--calib", type=Path,
+                   help="calibration (JSON, rectified or full form, or OpenCV YAML/XML)")
+    _input_arguments(p)
     p.add_argument("--config", type=Path, help="TOML file of parameters")
     _preset_argument(p)
     common(p)
@@ -101,6 +114,13 @@ def _build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("worker", help="serve the editor plugin: JSON lines on stdin/stdout")
     p.add_argument("--no-warm-up", action="store_true",
                    help="do not load the kernels right after the handshake")
+
+    p = sub.add_parser("calibrate", help="chessboard image pairs to a stereo calibration JSON")
+    p.add_argument("--pattern", required=True, help="inner corners COLSxROWS, e.g. 9x6")
+    p.add_argument("--square", required=True, type=float, help="side of a square, metres")
+    p.add_argument("--left", required=True, help="quoted glob of the left images")
+    p.add_argument("--right", required=True, help="quoted glob of the right images")
+    common(p)
     return parser
 
 
@@ -140,11 +160,23 @@ def _cmd_run(args) -> int:
     _say_if_compiling(args.quiet)
     progress, close = _progress_bar(args.quiet)
     try:
-        report = run_job(args.inputs, args.calib, args.out, params, progress=progress)
+        report = run_job(args.inputs, args.calib, args.out, params, progress=progress,
+                         layout=args.layout, swap=args.swap)
     finally:
         close()
     if not args.quiet:
         print(_summary(report, "run") + f" -> {report['outputs']['mesh']}")
+    return EXIT_OK
+
+
+def _cmd_calibrate(args) -> int:
+    from stereomesh.io.chessboard import calibrate_from_files
+
+    report = calibrate_from_files(args.left, args.right, args.pattern, args.square, args.out)
+    if not args.quiet:
+        print(f"calibrate: {report['pairs_used']} pairs, RMS {report['rms_px']:.3f} px, "
+              f"baseline {report['baseline_m']:.4f} m, {len(report['not_found'])} without "
+              f"the board -> {report['outputs']['calibration']}")
     return EXIT_OK
 
 
@@ -228,7 +260,7 @@ def main(argv: list[str] | None = None) -> int:
     args = parser.parse_args(argv)
     configure_process()
     commands = {"disparity": _cmd_disparity, "run": _cmd_run, "demo": _cmd_demo,
-                "worker": _cmd_worker}
+                "worker": _cmd_worker, "calibrate": _cmd_calibrate}
     try:
         return commands[args.command](args)
     except InputError as exc:

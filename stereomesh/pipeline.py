@@ -60,6 +60,9 @@ class StereoPair:
         Figures of reading and rectifying (layout, residuals), for the report.
     warnings : list of str
         Things the reader noticed that the user should know.
+    rectification : stereomesh.rectify.Rectification or None
+        When the reader rectified the pair: the transforms and the maps from the
+        rectified grid back to the original images.
     """
 
     left: np.ndarray
@@ -68,6 +71,7 @@ class StereoPair:
     sources: list[Path] = field(default_factory=list)
     info: dict = field(default_factory=dict)
     warnings: list[str] = field(default_factory=list)
+    rectification: object | None = None
 
     def __post_init__(self) -> None:
         for name in ("left", "right"):

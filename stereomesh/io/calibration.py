@@ -8,8 +8,24 @@ Rectified form (fixed by the design)::
 ``units`` names the unit of ``baseline``: ``"m"`` (also ``"metre"``, ``"meter"``
 and their plurals), ``"cm"`` or ``"mm"`` (converted to metres, the unit of every
 output), or ``"unscaled"`` when the baseline is nominal and the scale unknown.
-``image_size`` holds two positive whole numbers. The full form with
-intrinsics, distortion, R and T arrives with calibrated rectification.
+``image_size`` holds two positive whole numbers.
+
+Full form (a calibrated rig, rectified on reading with OpenCV)::
+
+    {"rectified": false, "image_size": [W, H], "units": "m",
+     "left":  {"K": [[fx, 0, cx], [0, fy, cy], [0, 0, 1]], "dist": [k1, k2, p1, p2, k3]},
+     "right": {"K": [[...], [...], [...]], "dist": [...]},
+     "R": [[...], [...], [...]], "T": [tx, ty, tz]}
+
+``K`` is each camera's 3x3 intrinsic matrix in pixels; ``dist`` its distortion
+coefficients in OpenCV's order (4, 5, 8, 12 or 14 numbers; ``[]`` for none);
+``R`` (3x3 rotation) and ``T`` (3 numbers, in ``units``) take a point from left-
+camera to right-camera coordinates, ``X_right = R X_left + T``, the convention of
+``cv2.stereoCalibrate`` (a right camera 10 cm to the right has ``T = [-0.1, 0, 0]``
+in metres). ``units`` follows the rectified form's rules. OpenCV FileStorage files
+(``.yml``, ``.yaml``, ``.xml``) with nodes ``K1``/``M1``, ``D1``, ``K2``/``M2``, ``D2``,
+``R``, ``T`` and ``image_size`` (or ``width`` and ``height``) are read too; their
+``T`` is taken in metres unless a ``units`` string node says otherwise.
 """
 
 from __future__ import annotations
@@ -19,7 +35,7 @@ import math
 from pathlib import Path
 
 from stereomesh.errors import InputError
-from stereomesh.rectify import RectifiedRig
+from stereomesh.rectify import RectifiedRig, StereoCalibration
 
 _REQUIRED = ("image_size", "focal_px", "cx", "cy", "baseline")
 
@@ -59,8 +75,9 @@ def rig_from_dict(data: dict, source: str = "calibration") -> RectifiedRig:
         raise InputError(f"{source}: expected a JSON object")
     if data.get("rectified") is not True:
         raise InputError(
-            f"{source}: only the rectified form is read so far; set \"rectified\": true "
-            "with focal_px, cx, cy, baseline and image_size"
+            f"{source}: not the rectified form; set \"rectified\": true with focal_px, cx, "
+            "cy, baseline and image_size, or give the full form (\"rectified\": false, "
+            "left/right K and dist, R, T)"
         )
     missing = [k for k in _REQUIRED if k not in data]
     if missing:
@@ -89,8 +106,148 @@ def rig_from_dict(data: dict, source: str = "calibration") -> RectifiedRig:
     )
 
 
+def _matrix(value, shape, field: str, source: str):
+    import numpy as np
+
+    what = "x".join(map(str, shape))
+    try:
+        arr = np.array(value, dtype=np.float64)
+    except (TypeError, ValueError):
+        raise InputError(f"{source}: {field} must be a {what} array of numbers, "
+                         f"got {value!r}") from None
+    if arr.shape != shape and not (len(shape) == 1 and arr.size == shape[0]):
+        raise InputError(f"{source}: {field} must be {what} numbers, got shape {arr.shape}")
+    if not np.isfinite(arr).all():
+        raise InputError(f"{source}: {field} must hold finite numbers")
+    return arr.reshape(shape)
+
+
+def _camera(data, side: str, source: str):
+    import numpy as np
+
+    if not isinstance(data, dict):
+        raise InputError(f"{source}: {side} must be an object with K and dist")
+    if "K" not in data:
+        raise InputError(f"{source}: missing field {side}.K (3x3 intrinsic matrix, pixels)")
+    K = _matrix(data["K"], (3, 3), f"{side}.K", source)
+    if K[0, 0] <= 0 or K[1, 1] <= 0 or abs(K[2, 2] - 1) > 1e-9 or np.any(K[2, :2] != 0):
+        raise InputError(f"{source}: {side}.K must be [[fx, s, cx], [0, fy, cy], [0, 0, 1]] "
+                         "with positive fx and fy")
+    dist = np.array(data.get("dist", []) or [], dtype=np.float64).ravel() \
+        if isinstance(data.get("dist", []), list) else None
+    if dist is None or dist.size not in (0, 4, 5, 8, 12, 14) or not np.isfinite(dist).all():
+        raise InputError(f"{source}: {side}.dist must be a list of 0, 4, 5, 8, 12 or 14 "
+                         f"numbers in OpenCV's order (k1 k2 p1 p2 k3 ...), got "
+                         f"{data.get('dist')!r}")
+    return K, (dist if dist.size else np.zeros(5))
+
+
+def calibration_from_dict(data: dict, source: str = "calibration") -> StereoCalibration:
+    """Build a :class:`StereoCalibration` from the full JSON form, checking every field."""
+    import numpy as np
+
+    if not isinstance(data, dict):
+        raise InputError(f"{source}: expected a JSON object")
+    missing = [k for k in ("image_size", "left", "right", "R", "T") if k not in data]
+    if missing:
+        raise InputError(f"{source}: missing field(s) {', '.join(missing)} of the full form")
+    size = _image_size(data["image_size"], source)
+    K1, d1 = _camera(data["left"], "left", source)
+    K2, d2 = _camera(data["right"], "right", source)
+    R = _matrix(data["R"], (3, 3), "R", source)
+    if np.abs(R @ R.T - np.eye(3)).max() > 1e-4 or np.linalg.det(R) < 0:
+        raise InputError(f"{source}: R must be a rotation matrix (orthonormal, determinant 1)")
+    T = _matrix(data["T"], (3,), "T", source)
+    if not np.linalg.norm(T) > 0:
+        raise InputError(f"{source}: T must not be zero (the cameras need a baseline)")
+    metres, _ = _units(data.get("units", "m"), source)
+    return StereoCalibration(K1, d1, K2, d2, R, T * (metres or 1.0), size,
+                             metric=metres is not None)
+
+
+def calibration_to_dict(cal: StereoCalibration) -> dict:
+    """The full JSON form of a calibration (lengths in metres, or unscaled)."""
+    return {
+        "rectified": False, "image_size": list(cal.image_size),
+        "units": "m" if cal.metric else "unscaled",
+        "left": {"K": cal.K1.tolist(), "dist": cal.dist1.ravel().tolist()},
+        "right": {"K": cal.K2.tolist(), "dist": cal.dist2.ravel().tolist()},
+        "R": cal.R.tolist(), "T": cal.T.ravel().tolist(),
+    }
+
+
+def _opencv_storage(path: Path) -> dict:
+    """The nodes of an OpenCV FileStorage stereo calibration as the full JSON form."""
+    import cv2
+
+    try:
+        fs = cv2.FileStorage(str(path), cv2.FILE_STORAGE_READ)
+    except cv2.error as exc:
+        raise InputError(f"{path}: not a readable OpenCV YAML/XML file ({exc.err})") from None
+    try:
+        def node(*names):
+            for name in names:
+                n = fs.getNode(name)
+                if not n.empty():
+                    return n
+            return None
+
+        def mat(*names):
+            n = node(*names)
+            if n is None:
+                raise InputError(f"{path}: missing node {' or '.join(names)}")
+            m = n.mat()
+            return (m if m is not None else [n.at(i).real() for i in range(n.size())])
+
+        size = node("image_size", "imageSize")
+        if size is not None:
+            m = size.mat()
+            wh = list(m.ravel()) if m is not None else [size.at(i).real() for i in range(2)]
+        elif node("width") is not None and node("height") is not None:
+            wh = [node("width").real(), node("height").real()]
+        else:
+            raise InputError(f"{path}: missing node image_size (or width and height)")
+        units = node("units")
+        return {"rectified": False, "image_size": [float(v) for v in wh],
+                "units": units.string() if units is not None else "m",
+                "left": {"K": mat("K1", "M1", "cameraMatrix1").tolist(),
+                         "dist": list(map(float, mat("D1", "dist1", "distCoeffs1").ravel()))},
+                "right": {"K": mat("K2", "M2", "cameraMatrix2").tolist(),
+                          "dist": list(map(float, mat("D2", "dist2", "distCoeffs2").ravel()))},
+                "R": mat("R").tolist(), "T": list(map(float, mat("T").ravel()))}
+    finally:
+        fs.release()
+
+
+def load_calibration(path: str | Path) -> RectifiedRig | StereoCalibration:
+    """Read a calibration file in either form.
+
+    Parameters
+    ----------
+    path : str or Path
+        JSON (rectified or full form) or an OpenCV FileStorage ``.yml``/``.yaml``/``.xml``.
+
+    Returns
+    -------
+    RectifiedRig or StereoCalibration
+        A rig for the rectified form, a calibration to rectify with otherwise.
+    """
+    path = Path(path)
+    if not path.is_file():
+        raise InputError(f"{path}: calibration file not found; check --calib")
+    if path.suffix.lower() in (".yml", ".yaml", ".xml"):
+        return calibration_from_dict(_opencv_storage(path), str(path))
+    try:
+        data = json.loads(path.read_text(encoding="utf-8"))
+    except (json.JSONDecodeError, UnicodeDecodeError) as exc:
+        raise InputError(f"{path}: not valid JSON ({exc})") from None
+    if isinstance(data, dict) and data.get("rectified") is False:
+        return calibration_from_dict(data, str(path))
+    return rig_from_dict(data, str(path))
+
+
 def read_calibration(path: str | Path) -> RectifiedRig:
-    """Read a calibration JSON file."""
+    """Read a calibration JSON file in the rectified form."""
     path = Path(path)
     if not path.is_file():
         raise InputError(f"{path}: calibration file not found; check --calib")
