@@ -320,8 +320,15 @@ def surface_from_cloud(cloud, params: Params, rig: RectifiedRig | None = None):
                   "faces": len(mesh.faces)}
 
 
-def repair_surface(mesh, params: Params):
+def repair_surface(mesh, params: Params, pair: StereoPair | None = None):
     """Remove small parts and defects, close small holes only, smooth and decimate.
+
+    A grid mesh (``mesh.pixels`` set) of ``pair`` is repaired in pixel space
+    (:func:`~stereomesh.geometry.grid_repair.repair_grid_mesh`): its holes
+    are the pixels without a vertex and its filled vertices take the colour of
+    their pixel. Any other mesh, or a grid mesh without its pair, goes through
+    PyMeshLab (:func:`~stereomesh.geometry.repair.repair_mesh`). Smoothing and
+    decimation always do.
 
     Returns
     -------
@@ -333,7 +340,22 @@ def repair_surface(mesh, params: Params):
 
     if len(mesh.faces) == 0:
         raise InputError("the surface has no faces to repair; check the surface parameters")
-    return repair_mesh(mesh, **section_arguments(params.repair, repair_mesh))
+    rp = params.repair
+    if mesh.pixels is None or pair is None:
+        return repair_mesh(mesh, **section_arguments(rp, repair_mesh))
+    from stereomesh.geometry.grid_repair import repair_grid_mesh
+
+    mesh, figures = repair_grid_mesh(
+        mesh, pair.rig, pair.colour, max_hole_edges=rp.max_hole_edges,
+        min_component_fraction=rp.min_component_fraction,
+        max_depth_jump=params.surface.max_depth_jump, grid_step=params.surface.grid_step)
+    if rp.smooth_iterations > 0 or 0 < rp.target_faces < len(mesh.faces):
+        mesh, more = repair_mesh(mesh, max_hole_edges=0, min_component_fraction=0.0,
+                                 smooth_iterations=rp.smooth_iterations,
+                                 target_faces=rp.target_faces)
+        figures.update(faces_after=more["faces_after"], vertices_after=more["vertices_after"],
+                       boundary_loops_after=more["boundary_loops_after"])
+    return mesh, figures
 
 
 def reconstruct(
@@ -415,7 +437,7 @@ def reconstruct(
                 source = per_pixel if params.surface.surface == "grid" else result.cloud
                 result.mesh, figs = surface_from_cloud(source, params, pair.rig)
             else:
-                result.mesh, figs = repair_surface(result.mesh, params)
+                result.mesh, figs = repair_surface(result.mesh, params, pair)
         except Exception as exc:
             raise StageFailed(stage, result) from exc
         result.figures[stage] = {"seconds": round(time.perf_counter() - t, 4), **figs}

@@ -21,42 +21,48 @@ def mean_neighbour_distance(points, pixels, index, k, radius):
     n = points.shape[0]
     h, w = index.shape
     out = np.empty(n, np.float64)
-    side = 2 * radius + 1
-    for i in prange(n):
-        best = np.full(side * side, np.inf)
-        m = 0
-        col, row = pixels[i, 0], pixels[i, 1]
-        px, py, pz = points[i, 0], points[i, 1], points[i, 2]
-        for dy in range(-radius, radius + 1):
-            r = row + dy
-            if r < 0 or r >= h:
-                continue
-            for dx in range(-radius, radius + 1):
-                c = col + dx
-                if c < 0 or c >= w or (dx == 0 and dy == 0):
+    # One buffer of the k nearest per chunk of points, not one per point: the
+    # allocation cost more than the distances.
+    n_chunks = min(n, 256)
+    for chunk in prange(n_chunks):
+        best = np.empty(max(k, 1), np.float64)
+        for i in range(chunk * n // n_chunks, (chunk + 1) * n // n_chunks):
+            m = 0
+            col, row = pixels[i, 0], pixels[i, 1]
+            px, py, pz = points[i, 0], points[i, 1], points[i, 2]
+            for dy in range(-radius, radius + 1):
+                r = row + dy
+                if r < 0 or r >= h:
                     continue
-                j = index[r, c]
-                if j < 0:
-                    continue
-                ex = points[j, 0] - px
-                ey = points[j, 1] - py
-                ez = points[j, 2] - pz
-                d = np.sqrt(ex * ex + ey * ey + ez * ez)
-                # Insertion into the sorted list of the nearest so far.
-                p = m
-                while p > 0 and best[p - 1] > d:
-                    best[p] = best[p - 1]
-                    p -= 1
-                best[p] = d
-                m += 1
-        take = min(k, m)
-        if take == 0:
-            out[i] = np.inf
-        else:
-            s = 0.0
-            for q in range(take):
-                s += best[q]
-            out[i] = s / take
+                for dx in range(-radius, radius + 1):
+                    c = col + dx
+                    if c < 0 or c >= w or (dx == 0 and dy == 0):
+                        continue
+                    j = index[r, c]
+                    if j < 0:
+                        continue
+                    ex = points[j, 0] - px
+                    ey = points[j, 1] - py
+                    ez = points[j, 2] - pz
+                    # Squared distances rank the same; roots only for the k kept.
+                    d = ex * ex + ey * ey + ez * ez
+                    if m == k and best[k - 1] <= d:
+                        continue
+                    # Insertion into the sorted list of the k nearest so far.
+                    p = m if m < k else k - 1
+                    while p > 0 and best[p - 1] > d:
+                        best[p] = best[p - 1]
+                        p -= 1
+                    best[p] = d
+                    if m < k:
+                        m += 1
+            if m == 0:
+                out[i] = np.inf
+            else:
+                s = 0.0
+                for q in range(m):
+                    s += np.sqrt(best[q])
+                out[i] = s / m
     return out
 
 

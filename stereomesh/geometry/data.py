@@ -155,6 +155,10 @@ class TriMesh:
     uv : (V, 2) float32 or None
         Texture coordinates into the left rectified image, OpenGL convention
         (origin at the bottom-left corner, v up).
+    pixels : (V, 2) int32 or None
+        ``(col, row)`` of the left-image pixel each vertex stands on, for meshes
+        built on the image grid (:func:`~stereomesh.geometry.surface.depth_grid_mesh`);
+        such meshes can be repaired in pixel space.
 
     Examples
     --------
@@ -173,6 +177,7 @@ class TriMesh:
     filled: np.ndarray
     normals: np.ndarray | None = None
     uv: np.ndarray | None = None
+    pixels: np.ndarray | None = None
 
     def __post_init__(self) -> None:
         self.vertices = _float_array("vertices", self.vertices, np.float64, (3,), None)
@@ -194,3 +199,9 @@ class TriMesh:
             self.normals = _float_array("normals", self.normals, np.float32, (3,), v)
         if self.uv is not None:
             self.uv = _float_array("uv", self.uv, np.float32, (2,), v)
+        if self.pixels is not None:
+            pix = np.asarray(self.pixels)
+            if not np.issubdtype(pix.dtype, np.integer):
+                raise TypeError(f"pixels must be integer, got dtype {pix.dtype}")
+            self.pixels = np.ascontiguousarray(pix, np.int32)
+            _check_shape("pixels", self.pixels, (2,), v)

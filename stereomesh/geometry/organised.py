@@ -25,8 +25,10 @@ def is_organised(cloud: PointCloud) -> bool:
     pix = cloud.pixels
     if pix.min() < 0:
         return False
-    key = pix[:, 1].astype(np.int64) * (int(pix[:, 0].max()) + 1) + pix[:, 0]
-    return len(np.unique(key)) == len(key)
+    width = int(pix[:, 0].max()) + 1
+    key = pix[:, 1].astype(np.int64) * width + pix[:, 0]
+    # A count per pixel is linear in the image size; np.unique would sort.
+    return int(np.bincount(key).max()) <= 1
 
 
 def pixel_index(cloud: PointCloud, shape: tuple[int, int] | None = None) -> np.ndarray:

@@ -22,6 +22,28 @@ def _edge_use(faces: np.ndarray, n_vertices: int):
     Returns
     -------
     boundary : (B, 2) int64
+        Boundary edges ``(low, high)``, in increasing order.
+    owner : (B,) int64
+        The face using each boundary edge.
+    n_nonmanifold : int
+        Edges shared by three or more faces.
+    """
+    from stereomesh.geometry._mesh_kernels import edge_use
+
+    faces = np.ascontiguousarray(faces, np.int32)
+    if len(faces) == 0:
+        return np.zeros((0, 2), np.int64), np.zeros(0, np.int64), 0
+    boundary, owner, n_nonmanifold = edge_use(faces, int(n_vertices))
+    order = np.lexsort((boundary[:, 1], boundary[:, 0]))
+    return boundary[order], owner[order], int(n_nonmanifold)
+
+
+def _edge_use_reference(faces: np.ndarray, n_vertices: int):
+    """Slow reference of :func:`_edge_use`, by sorting every edge key (for the tests).
+
+    Returns
+    -------
+    boundary : (B, 2) int64
         Boundary edges.
     owner : (B,) int64
         The face using each boundary edge.
@@ -45,8 +67,19 @@ def _edge_use(faces: np.ndarray, n_vertices: int):
     return boundary, order[once] // 3, int((counts > 2).sum())
 
 
-def _loops(boundary: np.ndarray) -> tuple[np.ndarray, int]:
+def _loops(boundary: np.ndarray, n_vertices: int | None = None) -> tuple[np.ndarray, int]:
     """Loop label of each boundary edge; edges sharing a vertex share a loop."""
+    from stereomesh.geometry._mesh_kernels import edge_loops
+
+    if len(boundary) == 0:
+        return np.zeros(0, np.int64), 0
+    nv = int(boundary.max()) + 1 if n_vertices is None else int(n_vertices)
+    labels, n = edge_loops(np.ascontiguousarray(boundary, np.int64), nv)
+    return labels, int(n)
+
+
+def _loops_reference(boundary: np.ndarray) -> tuple[np.ndarray, int]:
+    """Slow reference of :func:`_loops` with SciPy's connected components (for the tests)."""
     from scipy.sparse import coo_matrix
     from scipy.sparse.csgraph import connected_components
 
@@ -90,7 +123,7 @@ def count_boundary_loops(faces: np.ndarray, n_vertices: int | None = None) -> in
         return 0
     nv = int(faces.max()) + 1 if n_vertices is None else int(n_vertices)
     boundary, _, _ = _edge_use(faces, nv)
-    return _loops(boundary)[1]
+    return _loops(boundary, nv)[1]
 
 
 def _closable_hole_faces(faces: np.ndarray, n_vertices: int, max_edges: int):
@@ -101,7 +134,7 @@ def _closable_hole_faces(faces: np.ndarray, n_vertices: int, max_edges: int):
     and capping it would glue a lid onto an open surface.
     """
     boundary, owner, _ = _edge_use(faces, n_vertices)
-    loop, n_loops = _loops(boundary)
+    loop, n_loops = _loops(boundary, n_vertices)
     if n_loops == 0:
         return np.zeros(0, np.int64), 0
     size = np.bincount(loop, minlength=n_loops)
@@ -119,6 +152,14 @@ def _closable_hole_faces(faces: np.ndarray, n_vertices: int, max_edges: int):
 
 def _components(faces: np.ndarray, n_vertices: int) -> tuple[np.ndarray, int]:
     """Component label per vertex (vertices joined by faces) and the count."""
+    from stereomesh.geometry._mesh_kernels import vertex_components
+
+    labels, n = vertex_components(np.ascontiguousarray(faces, np.int32), int(n_vertices))
+    return labels, int(n)
+
+
+def _components_reference(faces: np.ndarray, n_vertices: int) -> tuple[np.ndarray, int]:
+    """Slow reference of :func:`_components` with SciPy's connected components (for the tests)."""
     from scipy.sparse import coo_matrix
     from scipy.sparse.csgraph import connected_components
 
@@ -145,15 +186,12 @@ def _small_component_faces(vertices, faces, fraction: float) -> np.ndarray:
     component filters join faces through edges instead, so at ``fraction`` 1 they
     would remove the largest component in pieces; the selection is made here.
     """
+    from stereomesh.geometry._mesh_kernels import component_sizes
+
     labels, n = _components(faces, len(vertices))
     flab = labels[faces[:, 0]]
-    nfaces = np.bincount(flab, minlength=n)
-    lo = np.full((n, 3), np.inf)
-    hi = np.full((n, 3), -np.inf)
-    used = np.unique(faces)
-    np.minimum.at(lo, labels[used], vertices[used])
-    np.maximum.at(hi, labels[used], vertices[used])
-    diag = np.linalg.norm(np.where(np.isfinite(hi - lo), hi - lo, 0), axis=1)
+    nfaces, diag = component_sizes(np.ascontiguousarray(faces, np.int32),
+                                   np.ascontiguousarray(vertices, np.float64), labels, n)
     largest = int(np.argmax(nfaces))
     small = (nfaces < fraction * nfaces[largest]) | (diag < fraction * diag[largest])
     small[largest] = False

@@ -81,6 +81,7 @@ def depth_grid_mesh(
     sigma_d: float | np.ndarray = CloudParams.sigma_d,
     max_depth_jump: float = 0.03,
     grid_step: int = 1,
+    filled: np.ndarray | None = None,
 ) -> TriMesh:
     """Mesh the disparity map as a grid: one vertex per pixel, faces between neighbours.
 
@@ -106,13 +107,17 @@ def depth_grid_mesh(
         Largest relative depth difference within a triangle (0.03 = 3 %).
     grid_step : int
         Pixel stride of the grid (1 = every pixel).
+    filled : (H, W) bool array, optional
+        Pixels whose disparity was filled in rather than measured; their
+        vertices get ``filled = 1`` and confidence 0.
 
     Returns
     -------
     TriMesh
         Vertices in ``rig.units`` (left camera frame); faces wound so that their
         normals face the camera; vertex normals; colours, confidence and
-        ``sigma_z = Z²·σ_d/(f·B)`` from the vertex's pixel; ``filled`` all 0.
+        ``sigma_z = Z²·σ_d/(f·B)`` from the vertex's pixel; ``filled`` from
+        ``filled`` (all 0 without it); ``pixels`` the vertex's ``(col, row)``.
         ``uv`` addresses the centre of the vertex's pixel in the left image in
         the OpenGL convention: ``(u + 0.5) / W`` and ``1 − (v + 0.5) / H`` for
         pixel column ``u`` and row ``v``, origin at the image's bottom-left.
@@ -128,6 +133,9 @@ def depth_grid_mesh(
     ((9, 3), (8, 3))
     """
     disparity, image, confidence, sigma = _check_maps(disparity, image, confidence, sigma_d)
+    if filled is not None and np.shape(filled) != disparity.shape:
+        raise ValueError(f"filled must have the disparity's shape {disparity.shape}, "
+                         f"got {np.shape(filled)}")
     if int(grid_step) != grid_step or grid_step < 1:
         raise ValueError(f"grid_step must be a positive integer, got {grid_step}")
     if not max_depth_jump >= 0:
@@ -272,16 +280,24 @@ def depth_grid_mesh(
     uv[:, 0] = (pc + 0.5) / width
     uv[:, 1] = 1.0 - (pr + 0.5) / height
     colors = at_used(image)
+    pixels = np.empty((n_vert, 2), np.int32)
+    pixels[:, 0], pixels[:, 1] = pc, pr
     del pr, pc
+    if filled is None:
+        filled_v = np.zeros(n_vert, np.uint8)
+    else:
+        filled_v = at_used(np.asarray(filled, bool)).astype(np.uint8)
+        conf = np.where(filled_v == 1, np.float32(0), conf)
     return TriMesh(
         vertices=verts,
         faces=faces,
         colors=colors,
         confidence=np.asarray(conf, np.float32),
         sigma_z=sigma_z,
-        filled=np.zeros(n_vert, np.uint8),
+        filled=filled_v,
         normals=normals,
         uv=uv,
+        pixels=pixels,
     )
 
 

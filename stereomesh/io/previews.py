@@ -312,7 +312,12 @@ def write_image_previews(
     metres or unscaled units, confidence 0–1) or a legend (occlusion classes).
     The depth preview needs the ``rig``.
     """
-    from stereomesh.io.images import write_png
+    from functools import partial
+
+    from stereomesh.io.images import write_png as write
+
+    # Previews are for a look, not for the archive: fast compression.
+    write_png = partial(write, compress_level=1)
 
     folder = Path(folder)
     paths = {
