@@ -60,7 +60,9 @@ def run_once(cache: Path, out: Path) -> dict:
     env = dict(os.environ, NUMBA_CACHE_DIR=str(cache))
     t = time.perf_counter()
     done = subprocess.run([sys.executable, "-c", CHILD, str(REPO / "demo_data"), str(out)],
-                          env=env, capture_output=True, text=True, check=True)
+                          env=env, capture_output=True, text=True)
+    if done.returncode:
+        sys.exit(f"the run failed:\n{done.stderr[-3000:]}")
     figures = json.loads(done.stdout.strip().splitlines()[-1])
     figures["process"] = time.perf_counter() - t
     return figures

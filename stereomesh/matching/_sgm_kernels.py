@@ -213,7 +213,7 @@ def _arrivals(r, rs, fresh, x, W, dp, ndir, prev_off, pmin, pprev, gray, penalti
     return src0, m0, pen0, src1, m1, pen1, src2, m2, pen2
 
 
-@njit(cache=True, inline="always")
+@njit(cache=True)
 def _columns(r, rs, fresh, x0, x1, mode, source, penalties, gray, ndir, crow, work, prev_off,
              cur_off, pmin, pprev, pcur, part, fwd, fwd_row, ckpt, ckpt_min, ckpt_slot, packing):
     """Cost row and the non-horizontal paths of columns ``[x0, x1)`` of row ``r``.
@@ -328,7 +328,7 @@ def _columns(r, rs, fresh, x0, x1, mode, source, penalties, gray, ndir, crow, wo
                 ckpt_min[ckpt_slot, j, x] = pmin[pcur, j, x]
 
 
-@njit(cache=True, inline="always")
+@njit(cache=True)
 def _columns_bytes(r, rs, fresh, x0, x1, mode, source, penalties, gray, ndir, crow8, work,
                    prev_off, cur_off, pmin, pprev, pcur, part, fwd, fwd_row, ckpt, ckpt_min,
                    ckpt_slot, packing):
@@ -454,7 +454,7 @@ def _pick(m1, m2, at, inf):
     return bv, bk, second
 
 
-@njit(cache=True, inline="always")
+@njit(cache=True)
 def _select_row(r, final, d_min, n_disp, best_k, c_best, c_second, c_minus, c_plus):
     """Left winners of row ``r`` from its summed costs in ``final[r & 1]``.
 
@@ -529,7 +529,7 @@ def _select_row(r, final, d_min, n_disp, best_k, c_best, c_second, c_minus, c_pl
                 c_plus[r, x] = flat[f0 + bk + 1] if bk < k_hi - 1 else bv
 
 
-@njit(cache=True, inline="always")
+@njit(cache=True)
 def _horizontal(r, gray, p1, p2, g_scale, crow, part, hbuf, out, out_row, cost_bits):
     """Both horizontal paths of row ``r``, added to the other paths in ``part[r & 1]``.
 
@@ -616,7 +616,7 @@ def _horizontal(r, gray, p1, p2, g_scale, crow, part, hbuf, out, out_row, cost_b
         b_prev, b_cur = b_cur, b_prev
 
 
-@njit(cache=True, inline="always")
+@njit(cache=True)
 def _horizontal_bytes(r, gray, p1, p2, g_scale, crow8, part, hbuf8, out, out_row, cost_bits):
     """:func:`_horizontal` on 8-bit lanes (``crow8`` and ``hbuf8`` hold bytes)."""
     W = gray.shape[1]
@@ -768,7 +768,7 @@ def _merge_right(v, o, m, a):
     return vmin(m, v), vselect_less(v, m, k, vselect_equal(v, m, vmin(a, k), a))
 
 
-@njit(cache=True, inline="always")
+@njit(cache=True)
 def _right_winners(r, final, d_min, n_disp, rmin, rarg, best_right):
     """Right-image winners of row ``r`` from its final sums ``final[r & 1]``.
 
