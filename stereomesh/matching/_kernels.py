@@ -31,31 +31,21 @@ def _valid_range(fx, width, d_min, n_disp):
     return max(0, fx - d_min - width + 1), min(n_disp, fx - d_min + 1)
 
 
-@njit(cache=True, parallel=True)
+# The four helpers below are single array expressions: NumPy runs them in a few
+# milliseconds, while as parallel numba kernels they cost seconds of compiling
+# on the first run after an install.
 def luma(image, scale):
     """ITU-R BT.601 luma of an (H, W, 3) image times ``scale``, float32."""
-    H, W, _ = image.shape
-    out = np.empty((H, W), np.float32)
-    wr = np.float32(0.299 * scale)
-    wg = np.float32(0.587 * scale)
-    wb = np.float32(0.114 * scale)
-    for y in prange(H):
-        for x in range(W):
-            out[y, x] = (wr * np.float32(image[y, x, 0]) + wg * np.float32(image[y, x, 1])
-                         + wb * np.float32(image[y, x, 2]))
+    image = np.asarray(image)
+    out = np.float32(0.299 * scale) * image[..., 0].astype(np.float32)
+    out += np.float32(0.587 * scale) * image[..., 1].astype(np.float32)
+    out += np.float32(0.114 * scale) * image[..., 2].astype(np.float32)
     return out
 
 
-@njit(cache=True, parallel=True)
 def edge_padded(image, pad_rows, pad_cols):
     """``image`` with its border rows and columns replicated ``pad_rows``/``pad_cols`` times."""
-    H, W = image.shape
-    out = np.empty((H + 2 * pad_rows, W + 2 * pad_cols), image.dtype)
-    for yy in prange(H + 2 * pad_rows):
-        y = min(max(yy - pad_rows, 0), H - 1)
-        for xx in range(W + 2 * pad_cols):
-            out[yy, xx] = image[y, min(max(xx - pad_cols, 0), W - 1)]
-    return out
+    return np.pad(image, ((pad_rows, pad_rows), (pad_cols, pad_cols)), mode="edge")
 
 
 @njit(cache=True, parallel=True)
@@ -585,40 +575,23 @@ def confidence_kernel(c_best, c_second, lr_diff, gray, peak_ratio_scale, lr_sigm
     return conf
 
 
-@njit(cache=True, parallel=True)
 def fixed_point_disparity(disparity, invalid):
     """Disparity as int16 sixteenths of a pixel above its minimum (plus one pixel).
 
     ``invalid`` where the disparity is not finite; the offset keeps every valid
     value positive and within int16 for spans up to 2047 pixels.
     """
-    H, W = disparity.shape
-    row_min = np.full(H, np.inf)
-    for y in prange(H):
-        m = np.inf
-        for x in range(W):
-            d = disparity[y, x]
-            if np.isfinite(d) and d < m:
-                m = d
-        row_min[y] = m
-    lo = row_min.min()
-    out = np.empty((H, W), np.int16)
-    for y in prange(H):
-        for x in range(W):
-            d = disparity[y, x]
-            out[y, x] = np.int16(np.round((d - lo + 1.0) * 16.0)) if np.isfinite(d) else invalid
-    return out
+    d = np.asarray(disparity, np.float64)
+    finite = np.isfinite(d)
+    lo = d[finite].min() if finite.any() else np.inf
+    with np.errstate(invalid="ignore"):
+        fixed = np.round((d - lo + 1.0) * 16.0)
+    return np.where(finite, fixed, invalid).astype(np.int16)
 
 
-@njit(cache=True, parallel=True)
 def newly_marked(before, after, invalid):
     """Pixels that hold ``invalid`` in ``after`` but did not in ``before``."""
-    H, W = before.shape
-    out = np.empty((H, W), np.bool_)
-    for y in prange(H):
-        for x in range(W):
-            out[y, x] = after[y, x] == invalid and before[y, x] != invalid
-    return out
+    return (after == invalid) & (before != invalid)
 
 
 @njit(cache=True, inline="always")
