@@ -49,7 +49,8 @@ def write_mesh_preview(out_dir: Path, mesh, report) -> None:
     from stereomesh.io.previews import RendererUnavailable, render_mesh_png
 
     try:
-        render_mesh_png(out_dir / "previews" / "mesh.png", mesh.vertices, mesh.faces, mesh.colors)
+        render_mesh_png(out_dir / "previews" / "mesh.png", mesh.vertices, mesh.faces, mesh.colors,
+                        normals=mesh.normals)
     except RendererUnavailable as exc:  # no off-screen OpenGL here: the mesh is still good
         report.warn(f"mesh preview not rendered: {exc}")
 
