@@ -25,7 +25,8 @@ import numpy as np
 
 from stereomesh.geometry.data import TriMesh
 
-__all__ = ["find_small_holes", "fill_small_holes", "repair_grid_mesh"]
+__all__ = ["coarser_grid_mesh", "fill_small_holes", "find_small_holes", "grid_maps",
+           "repair_grid_mesh"]
 
 # The four edge neighbours (row, col).
 _EDGE_NEIGHBOURS = ((-1, 0), (1, 0), (0, -1), (0, 1))
@@ -317,6 +318,62 @@ def _keep_faces(mesh: TriMesh, keep: np.ndarray) -> TriMesh:
     )
 
 
+def grid_maps(mesh: TriMesh, rig, shape: tuple[int, int]):
+    """The disparity, confidence, sigma_d and filled maps a grid mesh was built from.
+
+    Parameters
+    ----------
+    mesh : TriMesh
+        With ``pixels`` set.
+    rig : RectifiedRig
+    shape : (int, int)
+        ``(H, W)`` of the left image.
+
+    Returns
+    -------
+    disparity, confidence, sigma_d : (H, W) float32 arrays
+        NaN, 0 and 0 where no vertex stands.
+    filled : (H, W) bool array
+    """
+    cols, rows = mesh.pixels[:, 0], mesh.pixels[:, 1]
+    fb = float(rig.focal_px) * float(rig.baseline)
+    z = mesh.vertices[:, 2]
+    disparity = np.full(shape, np.nan, np.float32)
+    disparity[rows, cols] = fb / z - rig.doffs
+    confidence = np.zeros(shape, np.float32)
+    confidence[rows, cols] = mesh.confidence
+    sigma_d = np.zeros(shape, np.float32)
+    sigma_d[rows, cols] = mesh.sigma_z * fb / (z * z)
+    filled = np.zeros(shape, bool)
+    filled[rows, cols] = mesh.filled.astype(bool)
+    return disparity, confidence, sigma_d, filled
+
+
+def coarser_grid_mesh(mesh: TriMesh, rig, image: np.ndarray, step: int,
+                      max_depth_jump: float = 0.03) -> TriMesh:
+    """The grid mesh rebuilt on every ``step``-th pixel of its rows and columns.
+
+    For previews: a 2-million-face mesh shown 800 pixels wide looks the same
+    with a quarter of its faces, and renders in a fraction of the time.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from stereomesh.geometry.surface import depth_grid_mesh
+    >>> from stereomesh.rectify import RectifiedRig
+    >>> rig = RectifiedRig(focal_px=100.0, cx=4.0, cy=4.0, baseline=0.1)
+    >>> image = np.zeros((9, 9, 3), np.uint8)
+    >>> m = depth_grid_mesh(np.full((9, 9), 10.0, np.float32), rig, image)
+    >>> len(coarser_grid_mesh(m, rig, image, 2).faces)
+    32
+    """
+    from stereomesh.geometry.surface import depth_grid_mesh
+
+    disparity, confidence, sigma_d, filled = grid_maps(mesh, rig, np.shape(image)[:2])
+    return depth_grid_mesh(disparity, rig, image, confidence, sigma_d=sigma_d,
+                           max_depth_jump=max_depth_jump, grid_step=step, filled=filled)
+
+
 def repair_grid_mesh(
     mesh: TriMesh,
     rig,
@@ -399,16 +456,7 @@ def repair_grid_mesh(
         "components_removed": 0,
         "nonmanifold_fixed": 0,
     }
-    fb = float(rig.focal_px) * float(rig.baseline)
-    z = mesh.vertices[:, 2]
-    disparity = np.full((h, w), np.nan, np.float32)
-    disparity[rows, cols] = fb / z - rig.doffs
-    confidence = np.zeros((h, w), np.float32)
-    confidence[rows, cols] = mesh.confidence
-    sigma_d = np.zeros((h, w), np.float32)
-    sigma_d[rows, cols] = mesh.sigma_z * fb / (z * z)
-    filled = np.zeros((h, w), bool)
-    filled[rows, cols] = mesh.filled.astype(bool)
+    disparity, confidence, sigma_d, filled = grid_maps(mesh, rig, (h, w))
 
     grid = disparity[::step, ::step]
     if max_hole_edges >= 3:

@@ -19,6 +19,8 @@ from __future__ import annotations
 import time
 from pathlib import Path
 
+import numpy as np
+
 
 def write_disparity_outputs(out_dir: Path, result, report) -> None:
     """``disparity.pfm``, ``confidence.pfm`` and ``occlusion.png`` of a DisparityResult."""
@@ -44,10 +46,19 @@ def write_disparity_previews(out_dir: Path, result, report) -> None:
     report.output("previews", pdir)
 
 
-def write_mesh_preview(out_dir: Path, mesh, report) -> None:
+# Faces rendered for the mesh preview at most (grid meshes are re-gridded coarser).
+PREVIEW_FACES = 600_000
+
+
+def write_mesh_preview(out_dir: Path, mesh, report, pair=None) -> None:
     """A shaded render of the mesh from the left camera, or a warning when none can be made."""
     from stereomesh.io.previews import RendererUnavailable, render_mesh_png
 
+    if pair is not None and mesh.pixels is not None and len(mesh.faces) > PREVIEW_FACES:
+        from stereomesh.geometry.grid_repair import coarser_grid_mesh
+
+        step = int(np.ceil(np.sqrt(len(mesh.faces) / PREVIEW_FACES)))
+        mesh = coarser_grid_mesh(mesh, pair.rig, pair.colour, step)
     try:
         render_mesh_png(out_dir / "previews" / "mesh.png", mesh.vertices, mesh.faces, mesh.colors,
                         normals=mesh.normals)
@@ -111,7 +122,7 @@ def write_outputs(out_dir: str | Path, result, report, *, previews: bool = True)
         seconds["mesh"] = time.perf_counter() - t
         if previews:
             t = time.perf_counter()
-            write_mesh_preview(out_dir, result.mesh, report)
+            write_mesh_preview(out_dir, result.mesh, report, result.pair)
             seconds["previews"] = seconds.get("previews", 0.0) + time.perf_counter() - t
     report.stage("export", sum(v for k, v in seconds.items() if k != "previews"),
                  **({"faces": len(result.mesh.faces), "vertices": len(result.mesh.vertices)}
