@@ -122,20 +122,6 @@ def _jsonable(obj):
     return str(obj)
 
 
-def kernels_cached() -> bool:
-    """Whether numba's cache already holds compiled disparity kernels.
-
-    The index files (``*.nbi``) appear beside the kernel modules (or under
-    ``NUMBA_CACHE_DIR``) after the first compilation; without them the first
-    action compiles for over a minute on a two-core machine, which the host
-    should show with its reason.
-    """
-    root = os.environ.get("NUMBA_CACHE_DIR")
-    here = Path(__file__).resolve().parent / "matching"
-    places = [Path(root)] if root else [here / "__pycache__"]
-    return any(any(p.rglob("*_sgm_kernels*.nbi")) for p in places if p.is_dir())
-
-
 class Worker:
     """Serves requests read from ``stdin`` until shutdown or end of input.
 
@@ -203,6 +189,8 @@ class Worker:
 
     def _warm_up(self) -> None:
         t = time.perf_counter()
+        from stereomesh.matching.disparity import kernels_cached
+
         if kernels_cached():
             note = "loading the compiled kernels"
         else:
