@@ -227,8 +227,6 @@ def test_float_tiff_is_read_at_full_range(tmp_path):
 
 
 def test_a_bug_in_the_renderer_fails_instead_of_skipping(tmp_path, monkeypatch):
-    import pyvista
-
     from stereomesh.io import previews
 
     try:
@@ -239,7 +237,7 @@ def test_a_bug_in_the_renderer_fails_instead_of_skipping(tmp_path, monkeypatch):
     def broken(*args, **kwargs):
         raise NameError("deliberate typo")
 
-    monkeypatch.setattr(pyvista.PolyData, "from_regular_faces", broken)
+    monkeypatch.setattr(previews, "_poly_data", broken)
     v = np.array([[-1, -1, 5], [1, -1, 5], [0, 1, 5]], float)
     with pytest.raises(NameError):
         previews.render_mesh_png(tmp_path / "m.png", v, np.array([[0, 2, 1]]))

@@ -1,4 +1,4 @@
-"""Mesh preview rendering (off-screen VTK through pyvista)."""
+"""Mesh preview rendering (off-screen VTK)."""
 
 import numpy as np
 import pytest
@@ -25,7 +25,7 @@ def _render_or_skip(path, *args, **kwargs):
     try:
         render_mesh_png(path, *args, **kwargs)
     except RendererUnavailable as exc:  # only a missing renderer skips; bugs fail
-        pytest.skip(f"pyvista cannot render off-screen on this machine: {exc}")
+        pytest.skip(f"VTK cannot render off-screen on this machine: {exc}")
 
 
 def test_render_mesh_png_writes_coloured_view_of_left_camera(tmp_path):

@@ -36,14 +36,46 @@ def _camera_view_angle(vertices: np.ndarray, focal: np.ndarray, aspect: float) -
 
 
 class RendererUnavailable(RuntimeError):
-    """No off-screen renderer on this machine (pyvista missing or no OpenGL context)."""
+    """No off-screen renderer on this machine (VTK missing or no OpenGL context)."""
 
 
 _renderer_state: dict = {}
 
 
+def _vtk():
+    """VTK's rendering modules, imported on first use (with the OpenGL back end)."""
+    import vtkmodules.vtkRenderingOpenGL2  # noqa: F401  (registers the OpenGL classes)
+    from vtkmodules import vtkCommonCore, vtkCommonDataModel, vtkRenderingCore
+    from vtkmodules.util import numpy_support
+
+    # VTK warns "bad X server connection" on every run without a display, then
+    # renders off-screen all the same (EGL or OSMesa); keep its errors only.
+    vtkCommonCore.vtkLogger.SetStderrVerbosity(vtkCommonCore.vtkLogger.VERBOSITY_ERROR)
+    return vtkCommonCore, vtkCommonDataModel, vtkRenderingCore, numpy_support
+
+
+def _snapshot(renderer, width: int, height: int) -> np.ndarray:
+    """Render ``renderer`` off-screen into an (H, W, 3) uint8 image, top row first."""
+    _, _, rc, ns = _vtk()
+    window = rc.vtkRenderWindow()
+    try:
+        window.SetOffScreenRendering(1)
+        window.SetSize(width, height)
+        window.AddRenderer(renderer)
+        window.Render()
+        grab = rc.vtkWindowToImageFilter()
+        grab.SetInput(window)
+        grab.ReadFrontBufferOff()
+        grab.Update()
+        pixels = ns.vtk_to_numpy(grab.GetOutput().GetPointData().GetScalars())
+    finally:
+        window.Finalize()
+    # VTK's image origin is the bottom-left corner.
+    return np.ascontiguousarray(pixels.reshape(height, width, -1)[::-1, :, :3])
+
+
 def check_renderer() -> None:
-    """Raise :class:`RendererUnavailable` unless pyvista can render off-screen here.
+    """Raise :class:`RendererUnavailable` unless VTK can render off-screen here.
 
     The probe renders an empty scene, independently of the mesh code, so a bug
     in :func:`render_mesh_png` is never mistaken for a missing renderer. The
@@ -51,26 +83,39 @@ def check_renderer() -> None:
     """
     if "error" not in _renderer_state:
         try:
-            import pyvista
-            from vtkmodules.vtkCommonCore import vtkLogger
-
-            # VTK warns "bad X server connection" on every run without a display,
-            # then renders off-screen all the same; keep its errors only.
-            vtkLogger.SetStderrVerbosity(vtkLogger.VERBOSITY_ERROR)
-            pyvista.OFF_SCREEN = True
-            plotter = pyvista.Plotter(off_screen=True, window_size=(8, 8))
-            try:
-                plotter.screenshot(None, return_img=True)
-            finally:
-                plotter.close()
+            _, _, rc, _ = _vtk()
+            _snapshot(rc.vtkRenderer(), 8, 8)
             _renderer_state["error"] = None
         except Exception as exc:  # any failure of the bare probe means no renderer here
             _renderer_state["error"] = f"{type(exc).__name__}: {exc}"
     if _renderer_state["error"] is not None:
         raise RendererUnavailable(
-            f"no off-screen renderer (pyvista/VTK with OpenGL, EGL or OSMesa): "
+            f"no off-screen renderer (VTK with OpenGL, EGL or OSMesa): "
             f"{_renderer_state['error']}"
         )
+
+
+def _poly_data(vertices: np.ndarray, faces: np.ndarray, colors, normals):
+    cc, dm, _, ns = _vtk()
+    points = cc.vtkPoints()
+    points.SetData(ns.numpy_to_vtk(np.ascontiguousarray(vertices, np.float64), deep=True))
+    cells = dm.vtkCellArray()
+    offsets = np.arange(0, 3 * len(faces) + 1, 3, dtype=np.int64)
+    cells.SetData(ns.numpy_to_vtkIdTypeArray(offsets, deep=True),
+                  ns.numpy_to_vtkIdTypeArray(np.ascontiguousarray(faces, np.int64).ravel(),
+                                             deep=True))
+    poly = dm.vtkPolyData()
+    poly.SetPoints(points)
+    poly.SetPolys(cells)
+    rgb = np.full((len(vertices), 3), 180, np.uint8) if colors is None else colors
+    scalars = ns.numpy_to_vtk(np.ascontiguousarray(rgb), deep=True,
+                              array_type=cc.VTK_UNSIGNED_CHAR)
+    scalars.SetName("rgb")
+    poly.GetPointData().SetScalars(scalars)
+    vectors = ns.numpy_to_vtk(np.ascontiguousarray(normals, np.float32), deep=True)
+    vectors.SetName("Normals")
+    poly.GetPointData().SetNormals(vectors)
+    return poly
 
 
 def render_mesh_png(
@@ -86,7 +131,8 @@ def render_mesh_png(
     The camera sits at the origin looking at the centre of the mesh's bounding
     box with image y down, as the left rectified camera sees the scene; the
     view angle is widened just enough to frame every vertex. Rendering is
-    off-screen with pyvista (VTK), shaded, with vertex colours when given.
+    off-screen with VTK, Gouraud-shaded under a light kit, with vertex colours
+    when given.
 
     Parameters
     ----------
@@ -100,16 +146,16 @@ def render_mesh_png(
     size : (int, int)
         ``(width, height)`` of the image, pixels.
     normals : (V, 3) float array, optional
-        Unit vertex normals for the shading; computed by VTK when omitted
-        (about a second on a megapixel mesh).
+        Unit vertex normals for the shading; area-weighted face normals when
+        omitted.
 
     Raises
     ------
     ValueError
         If the arrays have the wrong shapes or the mesh is empty.
     RendererUnavailable
-        If pyvista cannot render off-screen here (no OpenGL/EGL/OSMesa
-        context). Any other error is a bug and propagates as it is.
+        If VTK cannot render off-screen here (no OpenGL/EGL/OSMesa context).
+        Any other error is a bug and propagates as it is.
 
     Examples
     --------
@@ -137,45 +183,45 @@ def render_mesh_png(
         raise ValueError(f"size must be positive, got {size}")
 
     check_renderer()
-    import pyvista
     from PIL import Image
 
+    from stereomesh.geometry.surface import vertex_normals
     from stereomesh.io.atomic import atomic_path
 
+    _, _, rc, _ = _vtk()
+    if normals is None:
+        normals = vertex_normals(vertices, faces)
     lo, hi = vertices.min(axis=0), vertices.max(axis=0)
     focal = (lo + hi) / 2.0
     if np.linalg.norm(focal) < 1e-12:
         focal = np.array([0.0, 0.0, 1.0])
-    poly = pyvista.PolyData.from_regular_faces(vertices, faces.astype(np.int64))
-    shading = {"smooth_shading": True}
-    if normals is not None:
-        poly.point_data["Normals"] = np.asarray(normals, np.float32)
-        poly.point_data.active_normals_name = "Normals"
-        shading = {"smooth_shading": False, "interpolation": "gouraud"}
-    plotter = pyvista.Plotter(off_screen=True, window_size=(width, height))
-    try:
-        plotter.set_background(_BACKGROUND)
-        if colors is not None:
-            poly.point_data["rgb"] = colors
-            plotter.add_mesh(poly, scalars="rgb", rgb=True, **shading)
-        else:
-            plotter.add_mesh(poly, color=(180, 180, 180), **shading)
-        cam = plotter.camera
-        cam.position = (0.0, 0.0, 0.0)
-        cam.focal_point = tuple(focal)
-        cam.up = (0.0, -1.0, 0.0)
-        cam.view_angle = _camera_view_angle(vertices, focal, width / height)
-        plotter.renderer.reset_camera_clipping_range()
-        image = plotter.screenshot(None, return_img=True)
-    finally:
-        plotter.close()
-    image = np.asarray(image)
-    if image.ndim != 3 or image.shape[:2] != (height, width):
+    mapper = rc.vtkPolyDataMapper()
+    mapper.SetInputData(_poly_data(vertices, faces, colors, normals))
+    mapper.SetColorModeToDirectScalars()
+    mapper.ScalarVisibilityOn()
+    actor = rc.vtkActor()
+    actor.SetMapper(mapper)
+    actor.GetProperty().SetInterpolationToGouraud()
+    renderer = rc.vtkRenderer()
+    renderer.SetBackground(*(c / 255.0 for c in _BACKGROUND))
+    renderer.AddActor(actor)
+    # Several soft lights rather than one head light: per-pixel normals of a
+    # depth map are noisy, and a single light turns that noise into speckle.
+    renderer.AutomaticLightCreationOff()
+    rc.vtkLightKit().AddLightsToRenderer(renderer)
+    camera = renderer.GetActiveCamera()
+    camera.SetPosition(0.0, 0.0, 0.0)
+    camera.SetFocalPoint(*focal)
+    camera.SetViewUp(0.0, -1.0, 0.0)
+    camera.SetViewAngle(_camera_view_angle(vertices, focal, width / height))
+    renderer.ResetCameraClippingRange()
+    image = _snapshot(renderer, width, height)
+    if image.shape[:2] != (height, width):
         raise RuntimeError(
             f"mesh preview came back with shape {image.shape}, not {(height, width)}"
         )
     with atomic_path(path) as tmp:
-        Image.fromarray(np.ascontiguousarray(image[:, :, :3])).save(tmp, format="PNG")
+        Image.fromarray(image).save(tmp, format="PNG")
 
 
 # --- image previews -------------------------------------------------------------------
