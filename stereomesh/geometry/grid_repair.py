@@ -428,11 +428,7 @@ def repair_grid_mesh(
     >>> fig["holes_filled"], fig["filled_vertices"], fig["boundary_loops_after"]
     (1, 1, 1)
     """
-    from stereomesh.geometry.repair import (
-        _count_components,
-        _small_component_faces,
-        count_boundary_loops,
-    )
+    from stereomesh.geometry.repair import _small_components, count_boundary_loops
     from stereomesh.geometry.surface import depth_grid_mesh
 
     if mesh.pixels is None:
@@ -478,14 +474,12 @@ def repair_grid_mesh(
             figures["filled_vertices"] = int(new.sum())
 
     if min_component_fraction > 0 and len(mesh.faces):
-        small = _small_component_faces(mesh.vertices, mesh.faces, min_component_fraction)
+        small, n_small = _small_components(mesh.vertices, mesh.faces, min_component_fraction)
         if len(small):
-            before = _count_components(mesh.faces, len(mesh.vertices))
             keep = np.ones(len(mesh.faces), bool)
             keep[small] = False
             mesh = _keep_faces(mesh, keep)
-            figures["components_removed"] = before - _count_components(mesh.faces,
-                                                                       len(mesh.vertices))
+            figures["components_removed"] = n_small
     figures.update(
         faces_after=int(len(mesh.faces)),
         vertices_after=int(len(mesh.vertices)),

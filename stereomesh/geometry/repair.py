@@ -179,12 +179,18 @@ def _count_components(faces: np.ndarray, n_vertices: int) -> int:
 
 
 def _small_component_faces(vertices, faces, fraction: float) -> np.ndarray:
+    """Faces of the small components (see :func:`_small_components`)."""
+    return _small_components(vertices, faces, fraction)[0]
+
+
+def _small_components(vertices, faces, fraction: float) -> tuple[np.ndarray, int]:
     """Faces of components with fewer faces, or a smaller bounding-box diagonal, than
     ``fraction`` of the largest component's (by faces; it is always kept).
 
     Components are sets of faces joined through shared vertices. PyMeshLab's own
     component filters join faces through edges instead, so at ``fraction`` 1 they
     would remove the largest component in pieces; the selection is made here.
+    Also returns how many components those faces form.
     """
     from stereomesh.geometry._mesh_kernels import component_sizes
 
@@ -195,7 +201,7 @@ def _small_component_faces(vertices, faces, fraction: float) -> np.ndarray:
     largest = int(np.argmax(nfaces))
     small = (nfaces < fraction * nfaces[largest]) | (diag < fraction * diag[largest])
     small[largest] = False
-    return np.flatnonzero(small[flab])
+    return np.flatnonzero(small[flab]), int((small & (nfaces > 0)).sum())
 
 
 def _current(ms) -> tuple[np.ndarray, np.ndarray]:
