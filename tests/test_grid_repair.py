@@ -195,3 +195,24 @@ def test_topology_kernels_match_their_references(seed):
     c2, m2 = repair._components_reference(faces, nv)
     np.testing.assert_array_equal(c1, c2)
     assert m1 == m2
+
+
+def test_pipeline_repairs_grid_meshes_in_pixel_space_then_decimates():
+    # The repair stage takes the pixel path for a grid mesh of its pair and hands
+    # decimation to PyMeshLab, which keeps colours and the filled flags.
+    from stereomesh.params import Params
+    from stereomesh.pipeline import StereoPair, repair_surface
+
+    d = _plane().astype(np.float32)
+    d[40:43, 40:43] = np.nan
+    image = _image(*d.shape)
+    mesh = depth_grid_mesh(d, RIG, image)
+    pair = StereoPair(image, image, RIG)
+    out, fig = repair_surface(mesh, Params(), pair)
+    assert fig["method"] == "pixel grid" and fig["holes_filled"] == 1
+    small, fig2 = repair_surface(mesh, Params().with_overrides({"target_faces": 2000}), pair)
+    assert len(small.faces) <= 2000 and fig2["faces_after"] == len(small.faces)
+    assert small.colors.shape == (len(small.vertices), 3) and small.filled.max() <= 1
+    # Without its pair the same mesh goes the general way.
+    _, fig3 = repair_surface(mesh, Params())
+    assert "method" not in fig3 and fig3["holes_filled"] == 1
