@@ -66,6 +66,8 @@ def _snapshot(renderer, width: int, height: int) -> np.ndarray:
         grab = rc.vtkWindowToImageFilter()
         grab.SetInput(window)
         grab.ReadFrontBufferOff()
+        # The window was just rendered; a second render would double the cost.
+        grab.ShouldRerenderOff()
         grab.Update()
         pixels = ns.vtk_to_numpy(grab.GetOutput().GetPointData().GetScalars())
     finally:
