@@ -41,6 +41,7 @@ def _first_run(quiet: bool, stop_after: str = "repair"):
     solver, a second one (one thread, no output) compiles the kernels of the
     later stages on a tiny pair, and the cache they share serves both; on two
     cores that roughly halves the wait. It is stopped when the command ends.
+    Yields the helper process, or None when the kernels are already cached.
     """
     from stereomesh.matching.disparity import kernels_cached
 
@@ -59,7 +60,7 @@ def _first_run(quiet: bool, stop_after: str = "repair"):
         except OSError:  # no second process: this one compiles everything, as before
             helper = None
     try:
-        yield
+        yield helper
     finally:
         if helper is not None and helper.poll() is None:
             helper.terminate()

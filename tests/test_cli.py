@@ -133,3 +133,19 @@ def test_run_poisson_surface_with_voxel_cloud(motorcycle, tmp_path):
     assert report["stages"]["filter_cloud"]["points"]["after_voxel"] < \
         report["stages"]["filter_cloud"]["points"]["input"]
     assert report["stages"]["repair"]["faces_after"] > 1000
+
+
+def test_first_run_compiles_the_later_stages_in_a_second_process(monkeypatch, capsys):
+    # On a first run (no cached kernels) the command says why it is slow and
+    # starts a helper that warms the later stages; the helper never outlives it.
+    from stereomesh import cli
+    from stereomesh.matching import disparity
+
+    monkeypatch.setattr(disparity, "kernels_cached", lambda: False)
+    with cli._first_run(quiet=False, stop_after="disparity") as helper:
+        assert helper is not None and helper.args[0]
+    assert helper.poll() is not None
+    assert "compiling the matching kernels" in capsys.readouterr().err
+    monkeypatch.setattr(disparity, "kernels_cached", lambda: True)
+    with cli._first_run(quiet=False) as helper:
+        assert helper is None
