@@ -118,8 +118,17 @@ class DisparityParams(_Section):
                                   min=16)
     tile_overlap: int = param(32, "rows solved above and below each strip and dropped",
                               min=0, max=1024)
-    subpixel: str = param("parabola", "sub-pixel interpolation of the cost minimum",
-                          choices=("parabola", "equiangular", "none"))
+    subpixel: str = param("parabola", "sub-pixel refinement: a parabola or equiangular fit "
+                          "of the three costs around the winner (fast), none, or alignment: "
+                          "Gauss-Newton fit of a slanted window on the intensities (most "
+                          "accurate on slanted surfaces, and gives a per-pixel sigma_d)",
+                          choices=("parabola", "equiangular", "none", "alignment"))
+    align_width: int = param(9, "alignment refinement: window width, odd, pixels",
+                             min=3, max=31)
+    align_height: int = param(7, "alignment refinement: window height, odd, pixels",
+                              min=1, max=31)
+    align_iterations: int = param(4, "alignment refinement: most Gauss-Newton steps",
+                                  min=1, max=20)
     lr_max_diff: int = param(1, "left-right check tolerance, pixels", min=0, max=16)
     speckle_size: int = param(100, "largest blob removed as speckle, pixels; 0 disables",
                               min=0)
@@ -138,6 +147,9 @@ class DisparityParams(_Section):
                 f"{source}: a {w}x{h} census window makes {w * h - 1} comparisons, more than "
                 f"the {MAX_CENSUS_BITS} a census string holds; use e.g. 9x7 or 7x9"
             )
+        if self.align_width % 2 == 0 or self.align_height % 2 == 0:
+            raise InputError(f"{source}: alignment window sides must be odd, got "
+                             f"{self.align_width}x{self.align_height}")
         if self.p1 >= self.p2:
             raise InputError(f"{source}: p1 ({self.p1}) must be below p2 ({self.p2})")
 
