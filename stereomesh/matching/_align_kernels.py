@@ -10,28 +10,34 @@ from __future__ import annotations
 import numpy as np
 from numba import njit, prange
 
+_STOP = 0.005  # pixels: a Gauss-Newton step below this ends the fit
+_CENTRE = np.float32(128.0)  # intensities are centred so float32 sums keep their digits
 
-@njit(cache=True, inline="always")
-def _cubic(row, xr):
-    """Value and derivative at ``xr`` of the Keys (a = -1/2) cubic interpolant of ``row``.
 
-    The caller guarantees ``1 <= xr < len(row) - 2``. Cubic rather than linear
-    interpolation because a linear interpolant's smoothing varies with the
-    fractional position, which pulls the fit toward whole pixels.
+@njit(cache=True, parallel=True)
+def cubic_table(image):
+    """Polynomial coefficients ``(c0, c1, c2, c3)`` of each row interval ``[i, i + 1)``.
+
+    The Keys (a = -1/2) cubic interpolant on ``[i, i + 1)`` is
+    ``((c3 t + c2) t + c1) t + c0`` with ``t`` the fraction past ``i``, from the
+    samples ``i - 1 .. i + 2``; intervals without four samples are zero (never
+    read). Cubic rather than linear interpolation because a linear
+    interpolant's smoothing varies with the fractional position, which pulls
+    the fit toward whole pixels. Intensities are centred on 128.
     """
-    i = int(xr)
-    t = xr - i
-    t2 = t * t
-    t3 = t2 * t
-    a = row[i - 1]
-    b = row[i]
-    c = row[i + 1]
-    d = row[i + 2]
-    value = (a * (-0.5 * t3 + t2 - 0.5 * t) + b * (1.5 * t3 - 2.5 * t2 + 1.0)
-             + c * (-1.5 * t3 + 2.0 * t2 + 0.5 * t) + d * (0.5 * t3 - 0.5 * t2))
-    slope = (a * (-1.5 * t2 + 2.0 * t - 0.5) + b * (4.5 * t2 - 5.0 * t)
-             + c * (-4.5 * t2 + 4.0 * t + 0.5) + d * (1.5 * t2 - t))
-    return value, slope
+    H, W = image.shape
+    table = np.zeros((H, W, 4), np.float32)
+    for y in prange(H):
+        for i in range(1, W - 2):
+            a = image[y, i - 1] - _CENTRE
+            b = image[y, i] - _CENTRE
+            c = image[y, i + 1] - _CENTRE
+            d = image[y, i + 2] - _CENTRE
+            table[y, i, 0] = b
+            table[y, i, 1] = 0.5 * (c - a)
+            table[y, i, 2] = a - 2.5 * b + 2.0 * c - 0.5 * d
+            table[y, i, 3] = -0.5 * a + 1.5 * b - 1.5 * c + 0.5 * d
+    return table
 
 
 @njit(cache=True, inline="always")
@@ -100,7 +106,7 @@ def _slant(init, y, x, rx, ry, tol):
 
 
 @njit(cache=True, inline="always")
-def _align_pixel(left, right, init, y, x, rx, ry, tol, iterations, max_shift):
+def _align_pixel(left, table, init, y, x, rx, ry, tol, iterations, max_shift):
     """Gauss-Newton fit of the disparity of ``(y, x)``; see ``align_subpixel_kernel``."""
     H, W = left.shape
     d0 = init[y, x]
@@ -109,32 +115,35 @@ def _align_pixel(left, right, init, y, x, rx, ry, tol, iterations, max_shift):
     var = np.nan
     converged = False
     for _ in range(iterations):
-        n = 0.0
-        s_rr = 0.0
-        s_r = 0.0
-        s_rg = 0.0
-        s_g = 0.0
-        s_gg = 0.0
-        s_lr = 0.0
-        s_l = 0.0
-        s_lg = 0.0
-        s_ll = 0.0
-        for j in range(-ry, ry + 1):
+        n = np.float32(0.0)
+        s_rr = np.float32(0.0)
+        s_r = np.float32(0.0)
+        s_rg = np.float32(0.0)
+        s_g = np.float32(0.0)
+        s_gg = np.float32(0.0)
+        s_lr = np.float32(0.0)
+        s_l = np.float32(0.0)
+        s_lg = np.float32(0.0)
+        s_ll = np.float32(0.0)
+        for j in range(max(-ry, -y), min(ry, H - 1 - y) + 1):
             yy = y + j
-            if yy < 0 or yy >= H:
-                continue
-            for i in range(-rx, rx + 1):
+            base = x - (d0 + delta + b * j)
+            for i in range(max(-rx, -x), min(rx, W - 1 - x) + 1):
                 xx = x + i
-                if xx < 0 or xx >= W:
-                    continue
-                if not abs(init[yy, xx] - d0) <= tol:
-                    continue
-                xr = xx - (d0 + delta + a * i + b * j)
-                if xr < 1.0 or xr >= W - 2.0:
-                    continue
-                r, g = _cubic(right[yy], xr)
-                lv = left[yy, xx]
-                n += 1.0
+                # Weights 0 or 1 instead of branches keep the loop free of jumps.
+                xr = base + i * (1.0 - a)
+                inside = (abs(init[yy, xx] - d0) <= tol) & (xr >= 1.0) & (xr < W - 2.0)
+                w = np.float32(1.0) if inside else np.float32(0.0)
+                k = min(max(int(xr), 1), W - 3)
+                t = np.float32(xr - k)
+                c0 = table[yy, k, 0]
+                c1 = table[yy, k, 1]
+                c2 = table[yy, k, 2]
+                c3 = table[yy, k, 3]
+                r = (((c3 * t + c2) * t + c1) * t + c0) * w
+                g = ((np.float32(3.0) * c3 * t + np.float32(2.0) * c2) * t + c1) * w
+                lv = (left[yy, xx] - _CENTRE) * w
+                n += w
                 s_rr += r * r
                 s_r += r
                 s_rg += r * g
@@ -146,25 +155,29 @@ def _align_pixel(left, right, init, y, x, rx, ry, tol, iterations, max_shift):
                 s_ll += lv * lv
         if n < 8.0:
             return d0, np.nan, False
+        # The solve in float64: the normal matrix is poorly conditioned where the
+        # intensities and their slopes correlate.
         # Left = gain * right + offset + c * slope, linear in (gain, offset, c):
         # gain and offset remove the exposure difference of the two cameras.
-        ok, gain, offset, c, inv_cc = _solve3(s_rr, s_r, s_rg, n, s_g, s_gg, s_lr, s_l, s_lg)
+        ok, gain, offset, c, inv_cc = _solve3(
+            np.float64(s_rr), np.float64(s_r), np.float64(s_rg), np.float64(n), np.float64(s_g),
+            np.float64(s_gg), np.float64(s_lr), np.float64(s_l), np.float64(s_lg))
         if not ok or gain <= 0.05:
             return d0, np.nan, False
         step = -c / gain
-        ssr = s_ll - (gain * s_lr + offset * s_l + c * s_lg)
-        var = max(ssr, 0.0) / max(n - 3.0, 1.0) * inv_cc / (gain * gain)
+        ssr = np.float64(s_ll) - (gain * s_lr + offset * s_l + c * s_lg)
+        var = max(ssr, 0.0) / max(np.float64(n) - 3.0, 1.0) * inv_cc / (gain * gain)
         delta += step
         if not abs(delta) <= max_shift:
             return d0, np.nan, False
-        if abs(step) < 1e-3:
+        if abs(step) < _STOP:
             converged = True
             break
     return d0 + delta, np.sqrt(var), converged
 
 
 @njit(cache=True, parallel=True)
-def align_subpixel_kernel(left, right, init, rx, ry, tol, iterations, max_shift):
+def align_subpixel_kernel(left, table, init, rx, ry, tol, iterations, max_shift):
     """Disparity, its Gauss-Newton standard deviation and a converged flag per pixel.
 
     For every finite ``init`` pixel: the slopes of the disparity plane from
@@ -172,19 +185,29 @@ def align_subpixel_kernel(left, right, init, rx, ry, tol, iterations, max_shift)
     offset, matching the left window against the right image sampled (cubic
     interpolation along the row) at ``x - d(i, j)`` with gain and offset. NaN
     pixels stay NaN; pixels whose fit fails keep ``init`` with a NaN sigma.
+    ``table`` is :func:`cubic_table` of the right image.
     """
     H, W = init.shape
     out = np.empty((H, W), np.float32)
     sigma = np.empty((H, W), np.float32)
     converged = np.zeros((H, W), np.bool_)
     for y in prange(H):
-        for x in range(W):
-            if not init[y, x] == init[y, x]:
-                out[y, x] = np.nan
-                sigma[y, x] = np.nan
-                continue
-            d, s, ok = _align_pixel(left, right, init, y, x, rx, ry, tol, iterations, max_shift)
-            out[y, x] = d
-            sigma[y, x] = s
-            converged[y, x] = ok
+        # prange's index is unsigned: ``-y`` in the window bounds would wrap.
+        _align_row(left, table, init, np.int64(y), rx, ry, tol, iterations, max_shift, out,
+                   sigma, converged)
     return out, sigma, converged
+
+
+@njit(cache=True, fastmath={"reassoc", "contract", "nsz", "arcp"})
+def _align_row(left, table, init, y, rx, ry, tol, iterations, max_shift, out, sigma, converged):
+    """One row of ``align_subpixel_kernel`` (array-taking helpers are called once per row)."""
+    W = init.shape[1]
+    for x in range(W):
+        if not init[y, x] == init[y, x]:
+            out[y, x] = np.nan
+            sigma[y, x] = np.nan
+            continue
+        d, s, ok = _align_pixel(left, table, init, y, x, rx, ry, tol, iterations, max_shift)
+        out[y, x] = d
+        sigma[y, x] = s
+        converged[y, x] = ok

@@ -94,7 +94,7 @@ def align_subpixel(
     disparity: np.ndarray,
     window: tuple[int, int] = (9, 7),
     support_tol: float = 1.0,
-    iterations: int = 4,
+    iterations: int = 2,
     max_shift: float = 1.0,
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Sub-pixel disparity by local image alignment on a slanted window.
@@ -125,7 +125,7 @@ def align_subpixel(
         Neighbours whose starting disparity differs from the centre's by more
         than this (pixels) are left out of the window and the plane fit.
     iterations : int
-        Most Gauss–Newton steps; a fit stops once a step is below 0.001 px.
+        Most Gauss–Newton steps; a fit stops once a step is below 0.005 px.
     max_shift : float
         A fit moving farther than this from the start (pixels) fails.
 
@@ -139,7 +139,7 @@ def align_subpixel(
         the fit failed or the input is NaN. It assumes independent residuals,
         so callers scale it (see ``disparity.alignment_sigma``).
     converged : (H, W) bool
-        Where the last step was below 0.001 px.
+        Where the last step was below 0.005 px.
 
     Examples
     --------
@@ -154,8 +154,9 @@ def align_subpixel(
     from stereomesh.matching import _align_kernels
 
     left, right, disparity, rx, ry = _check_align(left, right, disparity, window)
+    table = _align_kernels.cubic_table(right)
     return _align_kernels.align_subpixel_kernel(
-        left, right, disparity, rx, ry, float(support_tol), int(iterations), float(max_shift)
+        left, table, disparity, rx, ry, float(support_tol), int(iterations), float(max_shift)
     )
 
 
@@ -185,7 +186,7 @@ def _cubic_reference(rows: np.ndarray, xr: np.ndarray):
 
 
 def align_subpixel_reference(left, right, disparity, window=(9, 7), support_tol=1.0,
-                             iterations=4, max_shift=1.0):
+                             iterations=2, max_shift=1.0):
     """Slow numpy version of :func:`align_subpixel` (same results), for the tests.
 
     Pixel by pixel in Python with vectorised windows: meant for small images.
@@ -240,7 +241,7 @@ def align_subpixel_reference(left, right, disparity, window=(9, 7), support_tol=
             if not abs(delta) <= max_shift:
                 failed = True
                 break
-            if abs(step) < 1e-3:
+            if abs(step) < 0.005:
                 ok = True
                 break
         if failed:
