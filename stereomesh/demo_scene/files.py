@@ -11,7 +11,13 @@ from pathlib import Path
 import cv2
 import numpy as np
 
-from stereomesh.demo_scene.render import _default_mesh_step, _rig, render_demo_scene
+from stereomesh.demo_scene.render import (
+    OBLIQUE_ANGLE,
+    VIEWS,
+    _default_mesh_step,
+    _rig,
+    render_demo_scene,
+)
 from stereomesh.demo_scene.scene import BASE_WIDTH, MAX_WIDTH, MIN_WIDTH
 
 # ---------------------------------------------------------------------- writing
@@ -91,7 +97,8 @@ def demo_disparity_range(gt_disparity: np.ndarray) -> str:
     return f"{lo}:{hi}"
 
 
-def write_demo_scene(out_dir: str | Path, width: int = BASE_WIDTH) -> dict[str, Path]:
+def write_demo_scene(out_dir: str | Path, width: int = BASE_WIDTH,
+                     view: str = "frontal") -> dict[str, Path]:
     """Render the demo scene and write it into ``out_dir``.
 
     Parameters
@@ -100,6 +107,9 @@ def write_demo_scene(out_dir: str | Path, width: int = BASE_WIDTH) -> dict[str, 
         Folder to write into (created if missing).
     width : int
         Image width, see :func:`render_demo_scene`.
+    view : {'frontal', 'oblique'}
+        The rig facing the wall (the committed ``demo_data/``) or turned
+        (rendered on demand by the benchmarks and tests, not committed).
 
     Returns
     -------
@@ -109,7 +119,7 @@ def write_demo_scene(out_dir: str | Path, width: int = BASE_WIDTH) -> dict[str, 
     """
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
-    data = render_demo_scene(width)
+    data = render_demo_scene(width, view=view)
     calib = data["calib"]
     paths = {
         name: out / fname
@@ -141,8 +151,14 @@ def write_demo_scene(out_dir: str | Path, width: int = BASE_WIDTH) -> dict[str, 
     _write_ply(paths["gt_mesh"], data["gt_mesh_vertices"], data["gt_mesh_faces"])
     w, h = calib["image_size"]
     disp = data["gt_disparity"]
+    text = _README
+    if view != "frontal":
+        text = _README.replace(
+            "both cameras looking\ndown +z.",
+            f"both cameras turned\n{OBLIQUE_ANGLE:g} degrees about the vertical (the oblique "
+            "view: the wall recedes to the\nright; every file is in the left camera's frame).")
     paths["readme"].write_text(
-        _README.format(
+        text.format(
             w=w,
             h=h,
             f=calib["focal_px"],
@@ -167,6 +183,9 @@ def main(argv: list[str] | None = None) -> int:
         description="Render the synthetic demo stereo pair and its ground truth.",
     )
     parser.add_argument("--out", type=Path, default=Path("demo_data"), help="output folder")
+    parser.add_argument("--view", choices=VIEWS, default="frontal",
+                        help="frontal (the committed demo) or oblique (the rig turned "
+                        f"{OBLIQUE_ANGLE:g} degrees)")
     parser.add_argument(
         "--width",
         type=int,
@@ -180,7 +199,7 @@ def main(argv: list[str] | None = None) -> int:
     except ValueError as exc:
         parser.error(str(exc))
     start = time.perf_counter()
-    paths = write_demo_scene(args.out, args.width)
+    paths = write_demo_scene(args.out, args.width, args.view)
     for path in paths.values():
         print(path)
     print(f"rendered in {time.perf_counter() - start:.1f} s", file=sys.stderr)

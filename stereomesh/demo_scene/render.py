@@ -142,7 +142,8 @@ def _texel_for(focal: float) -> float:
     return float(np.clip(1.5 * Z_WALL / focal, 0.0012, 0.0025))
 
 
-def render_demo_scene(width: int = BASE_WIDTH, mesh_step: int | None = None) -> dict:
+def render_demo_scene(width: int = BASE_WIDTH, mesh_step: int | None = None,
+                      view: str = "frontal") -> dict:
     """Render the demo stereo pair and its ground truth.
 
     Parameters
@@ -154,6 +155,13 @@ def render_demo_scene(width: int = BASE_WIDTH, mesh_step: int | None = None) -> 
     mesh_step : int, optional
         Pixel spacing of the ground-truth mesh grid; default about ``width / 213``,
         which keeps the mesh at about 34 000 vertices at any width.
+    view : {'frontal', 'oblique'}
+        ``frontal``: the rig faces the wall (the committed demo). ``oblique``:
+        the rig turned :data:`OBLIQUE_ANGLE` degrees about the vertical, from
+        the left, so the wall recedes to the right and disparities vary across
+        the whole image (see :func:`oblique_pose`); the pillar's curved face is
+        seen from the side. The rig is still rectified (both cameras turn
+        together) and every output means the same, in the left camera's frame.
 
     Returns
     -------
@@ -172,11 +180,157 @@ def render_demo_scene(width: int = BASE_WIDTH, mesh_step: int | None = None) -> 
     >>> scene["left"].shape, scene["calib"]["focal_px"]
     ((96, 128, 3), 140.0)
     """
+    if view not in VIEWS:
+        raise ValueError(f"view must be one of {VIEWS}, got {view!r}")
     calib = _rig(width)
+    if view == "oblique":
+        return _render_oblique(calib, mesh_step)
     scene = _Scene(_texel_for(calib["focal_px"]))
     left = _render_view(scene, calib, 0.0, 1.0, 0.0, _SEED_LEFT)
     right = _render_view(scene, calib, BASELINE, _RIGHT_GAIN, _RIGHT_OFFSET, _SEED_RIGHT)
     depth, occluded = _ground_truth(scene, calib)
+    disparity = (np.float32(calib["focal_px"] * BASELINE) / depth).astype(np.float32)
+    step = mesh_step or _default_mesh_step(calib["image_size"][0])
+    vertices, faces = _grid_mesh(depth, calib, step)
+    return {
+        "left": left,
+        "right": right,
+        "gt_disparity": disparity,
+        "gt_occlusion": occluded,
+        "gt_depth": depth,
+        "calib": calib,
+        "gt_mesh_vertices": vertices,
+        "gt_mesh_faces": faces,
+    }
+
+
+VIEWS = ("frontal", "oblique")
+"""The views :func:`render_demo_scene` renders."""
+
+OBLIQUE_ANGLE = 25.0
+"""Degrees the oblique rig is turned about the vertical axis."""
+
+_OBLIQUE_TARGET = np.array([0.35, 0.0, Z_WALL])  # the point the turned rig looks at
+_OBLIQUE_DISTANCE = 3.3  # metres from the left camera to that point
+
+
+def oblique_pose() -> tuple[np.ndarray, np.ndarray]:
+    """Rotation (camera to world) and left camera centre of the oblique view.
+
+    The frontal left camera's frame is the world frame. The turned rig looks
+    along ``(sin a, 0, cos a)`` at a point 0.35 m right of the door's centre
+    on the wall plane, from 3.3 m; its baseline turns with it, so the pair
+    stays rectified.
+
+    Examples
+    --------
+    >>> rot, centre = oblique_pose()
+    >>> bool(np.allclose(rot @ [0, 0, 1], [np.sin(np.radians(25)), 0, np.cos(np.radians(25))]))
+    True
+    """
+    a = np.radians(OBLIQUE_ANGLE)
+    rot = np.array([[np.cos(a), 0.0, np.sin(a)], [0.0, 1.0, 0.0], [-np.sin(a), 0.0, np.cos(a)]])
+    centre = _OBLIQUE_TARGET - rot @ np.array([0.0, 0.0, _OBLIQUE_DISTANCE])
+    return rot, centre
+
+
+def _world_rays(rot, centre, xn, yn):
+    """The scene's ray form ``(ox, oy, u, v)`` of camera rays with normalised coordinates.
+
+    ``xn, yn``: ``(x - cx) / f`` and ``(y - cy) / f`` of the camera. Every ray of
+    the turned rig runs toward +Z (the half field of view plus the turn stay
+    below 90 degrees), so it can be written as ``(ox + u Z, oy + v Z, Z)``.
+    """
+    d = rot @ np.stack([xn, yn, np.ones_like(xn)]).reshape(3, -1).astype(np.float64)
+    u, v = d[0] / d[2], d[1] / d[2]
+    ox, oy = centre[0] - centre[2] * u, centre[1] - centre[2] * v
+    return (ox.astype(np.float32), oy.astype(np.float32), u.astype(np.float32),
+            v.astype(np.float32))
+
+
+def _oblique_window(calib, rot, centres):
+    """World box ``(x0, x1, y0, y1)`` that the rays of both turned cameras can reach."""
+    width, height = calib["image_size"]
+    f, cx, cy = calib["focal_px"], calib["cx"], calib["cy"]
+    xn = (np.array([-1.0, width, -1.0, width]) - cx) / f
+    yn = (np.array([-1.0, -1.0, height, height]) - cy) / f
+    xs, ys = [], []
+    for centre in centres:
+        ox, oy, u, v = _world_rays(rot, centre, xn, yn)
+        for z in (Z_WALL - 0.15, Z_WALL + 0.50):  # the nearest and farthest wall pieces
+            xs.append(ox + u * z)
+            ys.append(oy + v * z)
+    xs, ys = np.concatenate(xs), np.concatenate(ys)
+    return (float(xs.min()) - 0.05, float(xs.max()) + 0.05, float(ys.min()) - 0.05,
+            float(ys.max()) + 0.05)
+
+
+def _render_posed(scene, calib, rot, centre, gain, offset, seed) -> np.ndarray:
+    """:func:`_render_view` for a camera at ``centre`` turned by ``rot``."""
+    width, height = calib["image_size"]
+    f, cx, cy = calib["focal_px"], calib["cx"], calib["cy"]
+    sub = np.array(_SUBSAMPLES, np.float32)
+    image = np.empty((height, width, 3), np.uint8)
+    cols = np.arange(width, dtype=np.float32)
+    scale = np.float32(255.0 * _EXPOSURE * gain)
+    for r0, r1 in _strips(height, width * len(sub)):
+        rows = np.arange(r0, r1, dtype=np.float32)
+        xn = np.broadcast_to((cols[None, :, None] + sub[:, 0] - cx) / f, (r1 - r0, width, len(sub)))
+        yn = np.broadcast_to((rows[:, None, None] + sub[:, 1] - cy) / f, (r1 - r0, width, len(sub)))
+        ox, oy, u, v = _world_rays(rot, centre, xn, yn)
+        rgb = scene.radiance(ox, u, v, oy)
+        value = rgb.reshape(r1 - r0, width, len(sub), 3).mean(axis=2) * scale + np.float32(offset)
+        for i, row in enumerate(range(r0, r1)):
+            rng = np.random.default_rng([seed, row])
+            value[i] += rng.normal(0.0, _NOISE_SIGMA, (width, 3)).astype(np.float32)
+        image[r0:r1] = np.clip(np.rint(value), 0, 255).astype(np.uint8)
+    return image
+
+
+def _hit_points(scene, rot, centre, xn, yn):
+    """World points where camera rays first meet the scene, (n, 3) float64."""
+    ox, oy, u, v = _world_rays(rot, centre, xn, yn)
+    z = scene.cast(ox, u, v, oy).z.astype(np.float64)
+    return np.column_stack([ox + u * z, oy + v * z, z])
+
+
+def _oblique_ground_truth(scene, calib, rot, centre_left, centre_right):
+    """Camera depth at the left pixel centres and the occlusion codes, turned rig."""
+    width, height = calib["image_size"]
+    f, cx, cy = calib["focal_px"], calib["cx"], calib["cy"]
+    depth = np.empty((height, width), np.float32)
+    occluded = np.empty((height, width), np.uint8)
+    cols = np.arange(width, dtype=np.float64)
+    for r0, r1 in _strips(height, width):
+        rows = np.arange(r0, r1, dtype=np.float64)
+        xn = np.broadcast_to((cols[None, :] - cx) / f, (r1 - r0, width))
+        yn = np.broadcast_to((rows[:, None] - cy) / f, (r1 - r0, width))
+        world = _hit_points(scene, rot, centre_left, xn, yn)
+        cam_l = (world - centre_left) @ rot  # rows of rot.T @ (p - c)
+        cam_r = (world - centre_right) @ rot
+        x_r = cam_r[:, 0] / cam_r[:, 2] * f + cx
+        inside = np.flatnonzero((x_r >= -0.5) & (x_r <= width - 0.5))
+        occ = np.full(world.shape[0], 4, np.uint8)
+        # The right camera's ray through the same point: hidden if it meets a
+        # surface nearer than the point.
+        seen = _hit_points(scene, rot, centre_right, cam_r[inside, 0] / cam_r[inside, 2],
+                           cam_r[inside, 1] / cam_r[inside, 2])
+        seen_depth = ((seen - centre_right) @ rot)[:, 2]
+        occ[inside] = seen_depth < cam_r[inside, 2] * (1 - _OCCLUSION_TOL)
+        depth[r0:r1] = cam_l[:, 2].reshape(r1 - r0, width)
+        occluded[r0:r1] = occ.reshape(r1 - r0, width)
+    return depth, occluded
+
+
+def _render_oblique(calib: dict, mesh_step: int | None) -> dict:
+    rot, centre_left = oblique_pose()
+    centre_right = centre_left + rot @ np.array([BASELINE, 0.0, 0.0])
+    window = _oblique_window(calib, rot, (centre_left, centre_right))
+    scene = _Scene(_texel_for(calib["focal_px"]), window=window)
+    left = _render_posed(scene, calib, rot, centre_left, 1.0, 0.0, _SEED_LEFT)
+    right = _render_posed(scene, calib, rot, centre_right, _RIGHT_GAIN, _RIGHT_OFFSET,
+                          _SEED_RIGHT)
+    depth, occluded = _oblique_ground_truth(scene, calib, rot, centre_left, centre_right)
     disparity = (np.float32(calib["focal_px"] * BASELINE) / depth).astype(np.float32)
     step = mesh_step or _default_mesh_step(calib["image_size"][0])
     vertices, faces = _grid_mesh(depth, calib, step)

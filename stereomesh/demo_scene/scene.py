@@ -374,6 +374,11 @@ class _Texture:
         return self._sample(self.albedo, X, Y)
 
 
+def _at(origin, idx):
+    """``origin`` at the rays ``idx``: a number stays, an array is indexed."""
+    return origin[idx] if np.ndim(origin) else origin
+
+
 def _grid(box, texel):
     x0, x1, y0, y1 = box
     x0, x1, y0, y1 = x0 - _MARGIN, x1 + _MARGIN, y0 - _MARGIN, y1 + _MARGIN
@@ -393,13 +398,27 @@ class _Hits:
 
 
 class _Scene:
-    """The baked scene and its ray-caster; rays start at (ox, 0, 0) with direction (u, v, 1)."""
+    """The baked scene and its ray-caster.
 
-    def __init__(self, texel: float):
+    A ray is ``(ox + u Z, oy + v Z, Z)`` for ``Z`` from 0: it crosses the plane
+    ``Z = 0`` at ``(ox, oy)`` with direction ``(u, v, 1)``; ``ox``, ``oy`` are
+    numbers or one per ray (rays of a turned camera). ``window`` is the world
+    box ``(x0, x1, y0, y1)`` the textures cover; the frontal view needs only
+    the default.
+    """
+
+    def __init__(self, texel: float, window: tuple | None = None):
+        self.boxes = dict(_PIECE_BOX)
+        # Frontal rays never need marching; leaving it off keeps that render as it was.
+        self.march = window is not None
+        if window is not None:
+            self.boxes[WALL] = tuple(window)
+            self.boxes[FRAME] = (*_PIECE_BOX[FRAME][:3], window[3])
+            self.boxes[DOOR] = (*_PIECE_BOX[DOOR][:3], window[3])
         self.tex: dict[int, _Texture] = {}
         self.depth_range: dict[int, tuple[float, float]] = {}
         for piece, bake in _BAKERS.items():
-            xs, ys = _grid(_PIECE_BOX[piece], texel)
+            xs, ys = _grid(self.boxes[piece], texel)
             offset, colour = bake(xs, ys, texel)
             offset = np.broadcast_to(offset, (ys.size, xs.size)).astype(np.float32)
             gy, gx = np.gradient(offset, texel)
@@ -423,7 +442,7 @@ class _Scene:
                 h[idx] = self.tex[p].geo_at(X[idx], Y[idx])[:, 0]
         return h
 
-    def _solve_piece(self, piece, ox, u, v):
+    def _solve_piece(self, piece, ox, oy, u, v):
         """Newton along the ray on one piece's smooth surface, extended past its edges.
 
         Along any ray the surface slope ``u dZ/dX + v dZ/dY`` stays below 1 (at most
@@ -435,13 +454,38 @@ class _Scene:
         z = np.full(u.size, 0.5 * (lo + hi), np.float32)
         step = np.zeros_like(z)
         for _ in range(_NEWTON_STEPS):
-            g = tex.geo_at(ox + u * z, v * z)
+            g = tex.geo_at(ox + u * z, oy + v * z)
             slope = u * g[:, 1] + v * g[:, 2]
             step = (z - g[:, 0]) / np.maximum(1 - slope, 0.3)
             z = np.clip(z - step, lo, hi)
-        return z, np.abs(step) < 1e-4
+        ok = np.abs(step) < 1e-4
+        if self.march and not ok.all():
+            # Rays of a turned camera can meet the carved relief at slopes above 1,
+            # where Newton's method may cycle: march to the first crossing instead.
+            bad = np.flatnonzero(~ok)
+            z[bad], ok[bad] = self._march(tex, lo, hi, _at(ox, bad), _at(oy, bad), u[bad],
+                                          v[bad])
+        return z, ok
 
-    def cast(self, ox: float, u: np.ndarray, v: np.ndarray) -> _Hits:
+    @staticmethod
+    def _march(tex, lo, hi, ox, oy, u, v):
+        """First crossing of ``Z = height`` along rays: 64 samples, then bisection."""
+        zs = np.linspace(lo, hi, 64, dtype=np.float32)
+        above = np.empty((zs.size, u.size), bool)
+        for k, zk in enumerate(zs):
+            above[k] = zk >= tex.geo_at(ox + u * zk, oy + v * zk)[:, 0]
+        first = np.argmax(above, axis=0)
+        found = above[first, np.arange(u.size)]
+        a = zs[np.maximum(first - 1, 0)].copy()
+        b = zs[first].copy()
+        for _ in range(24):
+            m = 0.5 * (a + b)
+            up = m >= tex.geo_at(ox + u * m, oy + v * m)[:, 0]
+            b = np.where(up, m, b)
+            a = np.where(up, a, m)
+        return b.astype(np.float32), found
+
+    def cast(self, ox, u: np.ndarray, v: np.ndarray, oy=0.0) -> _Hits:
         """First hit of each ray: depth Z and what was hit."""
         n = u.size
         z = np.full(n, np.inf, np.float32)
@@ -463,13 +507,13 @@ class _Scene:
                 ay[sel] = fy[better]
 
         for piece in _PIECES:
-            bx0, bx1, by0, by1 = _PIECE_BOX[piece]
+            bx0, bx1, by0, by1 = self.boxes[piece]
             lo, hi = self.depth_range[piece]
             if piece == WALL:
                 idx = np.arange(n)
             else:
                 xa, xb = ox + u * lo, ox + u * hi
-                ya, yb = v * lo, v * hi
+                ya, yb = oy + v * lo, oy + v * hi
                 idx = np.flatnonzero(
                     (np.maximum(xa, xb) >= bx0)
                     & (np.minimum(xa, xb) <= bx1)
@@ -478,8 +522,9 @@ class _Scene:
                 )
             if not idx.size:
                 continue
-            zc, ok = self._solve_piece(piece, ox, u[idx], v[idx])
-            ok &= _piece_of(ox + u[idx] * zc, v[idx] * zc) == piece
+            oxi, oyi = _at(ox, idx), _at(oy, idx)
+            zc, ok = self._solve_piece(piece, oxi, oyi, u[idx], v[idx])
+            ok &= _piece_of(oxi + u[idx] * zc, oyi + v[idx] * zc) == piece
             take(idx[ok], zc[ok], piece)
 
         # Vertical faces: where the ray passes over an edge while in front of the
@@ -488,13 +533,14 @@ class _Scene:
         for axis, lines, d in ((1, _X_LINES, u), (2, _Y_LINES, v)):
             for c in lines:
                 with np.errstate(divide="ignore", invalid="ignore"):
-                    zb = ((c - ox) if axis == 1 else c) / d
+                    zb = ((c - ox) if axis == 1 else (c - oy)) / d
                 idx = np.flatnonzero((zb > self.zmin) & (zb < self.zmax))
                 if not idx.size:
                     continue
                 zb = zb[idx].astype(np.float32)
                 s = np.sign(d[idx]).astype(np.float32)
-                other = (ox + u[idx] * zb) if axis == 2 else (v[idx] * zb)
+                other = ((_at(ox, idx) + u[idx] * zb) if axis == 2
+                         else (_at(oy, idx) + v[idx] * zb))
                 cx = np.full(idx.size, c, np.float32)
                 px, py = (cx, other) if axis == 1 else (other, cx)
                 if axis == 1:
@@ -526,11 +572,11 @@ class _Scene:
             raise RuntimeError("demo scene: a ray missed every surface")
         return _Hits(z, kind, face, sign, ax, ay)
 
-    def radiance(self, ox: float, u: np.ndarray, v: np.ndarray) -> np.ndarray:
+    def radiance(self, ox, u: np.ndarray, v: np.ndarray, oy=0.0) -> np.ndarray:
         """Lambertian radiance (n, 3), 1.0 = white lit head-on at full strength."""
-        hit = self.cast(ox, u, v)
+        hit = self.cast(ox, u, v, oy)
         z = hit.z
-        X, Y = ox + u * z, v * z
+        X, Y = ox + u * z, oy + v * z
         normal = np.zeros((z.size, 3), np.float32)
         albedo = np.empty((z.size, 3), np.float32)
         for piece in _PIECES:
