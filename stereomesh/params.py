@@ -118,7 +118,7 @@ class DisparityParams(_Section):
                                   min=16)
     tile_overlap: int = param(32, "rows solved above and below each strip and dropped",
                               min=0, max=1024)
-    subpixel: str = param("parabola", "sub-pixel refinement: a parabola or equiangular fit "
+    subpixel: str = param("alignment", "sub-pixel refinement: a parabola or equiangular fit "
                           "of the three costs around the winner (fast), none, or alignment: "
                           "Gauss-Newton fit of a slanted window on the intensities (most "
                           "accurate on slanted surfaces, and gives a per-pixel sigma_d)",
@@ -161,7 +161,9 @@ class DisparityParams(_Section):
 class CloudParams(_Section):
     """Triangulation and point-cloud filtering."""
 
-    sigma_d: float = param(0.25, "disparity standard deviation for sigma_z, pixels", min=0.0)
+    sigma_d: float = param(0.25, "disparity standard deviation for sigma_z, pixels, where "
+                           "the sub-pixel refinement gives none per pixel (parabola, "
+                           "equiangular, none, or a failed alignment fit)", min=0.0)
     depth_min: float = param(0.0, "nearest depth kept, metres", min=0.0)
     depth_max: float = param(0.0, "farthest depth kept, metres; 0 means no limit", min=0.0)
     cloud_min_confidence: float = param(0.05, "points below this confidence are dropped",
