@@ -163,7 +163,7 @@ class CloudParams(_Section):
 
     sigma_d: float = param(0.25, "disparity standard deviation for sigma_z, pixels, where "
                            "the sub-pixel refinement gives none per pixel (parabola, "
-                           "equiangular, none, or a failed alignment fit)", min=0.0)
+                           "equiangular or none)", min=0.0)
     depth_min: float = param(0.0, "nearest depth kept, metres", min=0.0)
     depth_max: float = param(0.0, "farthest depth kept, metres; 0 means no limit", min=0.0)
     cloud_min_confidence: float = param(0.05, "points below this confidence are dropped",
