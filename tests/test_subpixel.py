@@ -178,3 +178,40 @@ def test_sigma_coverage_and_accuracy_on_the_demo_views(view, request):
     assert 0.90 <= within2 <= 0.98, within2
     assert near.mean() <= 0.075
     assert (near < 0.1).mean() >= 0.75
+
+
+def test_accuracy_statement_keeps_the_scale_apart_from_sigma_z():
+    from stereomesh.geometry.data import PointCloud
+    from stereomesh.io.calibration import rig_from_dict
+    from stereomesh.report import DEFAULT_SCALE_UNCERTAINTY, accuracy_statement
+
+    calib = {"rectified": True, "image_size": [64, 48], "focal_px": 700.0, "cx": 31.5,
+             "cy": 23.5, "baseline": 40.0, "doffs": 0.0, "units": "cm"}
+    z = np.array([3.0, 3.5, 4.0])
+    sigma_d = 0.05
+    cloud = PointCloud(np.column_stack([np.zeros(3), np.zeros(3), z]),
+                       np.zeros((3, 3), np.uint8), np.ones(3, np.float32),
+                       (z * z * sigma_d / 280.0).astype(np.float32))
+    plain = accuracy_statement(rig_from_dict(calib), cloud)
+    # Closed form: sigma_Z = Z^2 sigma_d / (f B) at the median depth 3.5 m, f B = 280 m px.
+    assert plain["depth_sigma_at_median_depth"] == pytest.approx(3.5**2 * 0.05 / 280, rel=1e-5)
+    assert plain["scale_uncertainty_relative"] == DEFAULT_SCALE_UNCERTAINTY
+    assert "default" in plain["scale_uncertainty_source"]
+    assert "licensed surveyors" in plain["note"]
+    # Stated uncertainties: 0.2 cm of 40 cm (0.5 %) and 2.1 px of 700 px (0.3 %) add in
+    # quadrature to 0.583 %.
+    stated = accuracy_statement(rig_from_dict({**calib, "baseline_std": 0.2,
+                                               "focal_std_px": 2.1}), cloud)
+    assert stated["scale_uncertainty_relative"] == pytest.approx(np.hypot(0.005, 0.003))
+    assert stated["scale_sigma_at_median_depth"] == pytest.approx(3.5 * np.hypot(0.005, 0.003))
+    unscaled = accuracy_statement(rig_from_dict({**calib, "units": "unscaled"}), cloud)
+    assert unscaled["scale_uncertainty_relative"] is None
+
+
+def test_calibration_refuses_a_negative_uncertainty():
+    from stereomesh.errors import InputError
+    from stereomesh.io.calibration import rig_from_dict
+
+    with pytest.raises(InputError, match="baseline_std"):
+        rig_from_dict({"rectified": True, "image_size": [64, 48], "focal_px": 700.0,
+                       "cx": 31.5, "cy": 23.5, "baseline": 0.4, "baseline_std": -1})
