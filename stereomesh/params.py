@@ -127,7 +127,7 @@ class DisparityParams(_Section):
                              min=3, max=31)
     align_height: int = param(7, "alignment refinement: window height, odd, pixels",
                               min=1, max=31)
-    align_iterations: int = param(2, "alignment refinement: most Gauss-Newton steps of the "
+    align_iterations: int = param(1, "alignment refinement: most Gauss-Newton steps of the "
                                   "first pass", min=1, max=20)
     align_passes: int = param(2, "alignment refinement: passes; each later one re-estimates "
                               "the window's slant from the one before and makes one step",

@@ -94,7 +94,7 @@ def align_subpixel(
     disparity: np.ndarray,
     window: tuple[int, int] = (9, 7),
     support_tol: float = 1.0,
-    iterations: int = 2,
+    iterations: int = 1,
     max_shift: float = 1.0,
     passes: int = 2,
     strip_rows: int = 256,
@@ -222,7 +222,7 @@ def _cubic_reference(rows: np.ndarray, xr: np.ndarray):
 
 
 def align_subpixel_reference(left, right, disparity, window=(9, 7), support_tol=1.0,
-                             iterations=2, max_shift=1.0, passes=2):
+                             iterations=1, max_shift=1.0, passes=2):
     """Slow numpy version of :func:`align_subpixel` (same results), for the tests.
 
     Pixel by pixel in Python with vectorised windows: meant for small images.
