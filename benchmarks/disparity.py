@@ -20,6 +20,8 @@ Printed:
   the time of ``compute_disparity`` (cost, solver, left-right check,
   sub-pixel, confidence, speckles) against OpenCV MODE_SGBM and
   MODE_SGBM_3WAY, each ratio taken against the OpenCV run next to it;
+- on the same pair, the sub-pixel alignment refinement's time against the
+  SGM solve's in the same calls (``--refinement``: only this);
 - whole commands on the 1.4 MP pair: ``stereomesh disparity`` against a small
   script running OpenCV MODE_SGBM on the same files, wall time and peak RSS,
   alternated, median of the ratios;
@@ -241,6 +243,31 @@ def speed_table(folder, rounds=7, with_bp=True):
               f"(best {min(bp_ratio):.2f})")
 
 
+def refinement_table(folder, rounds=5):
+    """Time of the alignment refinement against the SGM solve of the same call."""
+    from PIL import Image
+
+    from stereomesh.matching.sgm import Workspace
+
+    left = np.asarray(Image.open(folder / "left.png").convert("RGB"))
+    right = np.asarray(Image.open(folder / "right.png").convert("RGB"))
+    h, w = left.shape[:2]
+    workspace = Workspace()
+    params = DisparityParams(disp_range="128:384", subpixel="alignment")
+    compute_disparity(left, right, params, workspace=workspace)  # load kernels, size memory
+    solver, refine = [], []
+    for _ in range(rounds):
+        steps = compute_disparity(left, right, params, workspace=workspace).figures[
+            "step_seconds"]
+        solver.append(steps["solver"])
+        refine.append(steps["subpixel"])
+    ratios = np.array(refine) / np.array(solver)
+    print(f"\n== sub-pixel alignment vs the SGM solve, {w}x{h}, 256 disparities ==")
+    print(f"SGM solve {np.median(solver):.3f} s median, alignment refinement "
+          f"{np.median(refine):.3f} s median; ratio median {np.median(ratios):.2f}, best "
+          f"{ratios.min():.2f} (goal <= 0.5)")
+
+
 def command_table(folder, rounds=5):
     lo, hi = "128", "384"
     out = Path(tempfile.mkdtemp(prefix="stereomesh-cmd-"))
@@ -272,11 +299,17 @@ def command_table(folder, rounds=5):
 def main(argv=None):
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--quick", action="store_true", help="accuracy and in-process SGM only")
+    ap.add_argument("--refinement", action="store_true",
+                    help="only the sub-pixel refinement against the SGM solve")
     args = ap.parse_args(argv)
+    if args.refinement:
+        refinement_table(render_speed_pair())
+        return
     print(f"cold JIT compile (fresh cache, tiny pair): {cold_jit_seconds():.1f} s")
     accuracy_table()
     folder = render_speed_pair()
     speed_table(folder, with_bp=not args.quick)
+    refinement_table(folder)
     if not args.quick:
         command_table(folder)
 

@@ -118,8 +118,20 @@ class DisparityParams(_Section):
                                   min=16)
     tile_overlap: int = param(32, "rows solved above and below each strip and dropped",
                               min=0, max=1024)
-    subpixel: str = param("parabola", "sub-pixel interpolation of the cost minimum",
-                          choices=("parabola", "equiangular", "none"))
+    subpixel: str = param("alignment", "sub-pixel refinement: a parabola or equiangular fit "
+                          "of the three costs around the winner (fast), none, or alignment: "
+                          "Gauss-Newton fit of a slanted window on the intensities (most "
+                          "accurate on slanted surfaces, and gives a per-pixel sigma_d)",
+                          choices=("parabola", "equiangular", "none", "alignment"))
+    align_width: int = param(9, "alignment refinement: window width, odd, pixels",
+                             min=3, max=31)
+    align_height: int = param(7, "alignment refinement: window height, odd, pixels",
+                              min=1, max=31)
+    align_iterations: int = param(1, "alignment refinement: most Gauss-Newton steps of the "
+                                  "first pass", min=1, max=20)
+    align_passes: int = param(2, "alignment refinement: passes; each later one re-estimates "
+                              "the window's slant from the one before and makes one step",
+                              min=1, max=4)
     lr_max_diff: int = param(1, "left-right check tolerance, pixels", min=0, max=16)
     speckle_size: int = param(100, "largest blob removed as speckle, pixels; 0 disables",
                               min=0)
@@ -138,6 +150,9 @@ class DisparityParams(_Section):
                 f"{source}: a {w}x{h} census window makes {w * h - 1} comparisons, more than "
                 f"the {MAX_CENSUS_BITS} a census string holds; use e.g. 9x7 or 7x9"
             )
+        if self.align_width % 2 == 0 or self.align_height % 2 == 0:
+            raise InputError(f"{source}: alignment window sides must be odd, got "
+                             f"{self.align_width}x{self.align_height}")
         if self.p1 >= self.p2:
             raise InputError(f"{source}: p1 ({self.p1}) must be below p2 ({self.p2})")
 
@@ -146,7 +161,9 @@ class DisparityParams(_Section):
 class CloudParams(_Section):
     """Triangulation and point-cloud filtering."""
 
-    sigma_d: float = param(0.25, "disparity standard deviation for sigma_z, pixels", min=0.0)
+    sigma_d: float = param(0.25, "disparity standard deviation for sigma_z, pixels, where "
+                           "the sub-pixel refinement gives none per pixel (parabola, "
+                           "equiangular or none)", min=0.0)
     depth_min: float = param(0.0, "nearest depth kept, metres", min=0.0)
     depth_max: float = param(0.0, "farthest depth kept, metres; 0 means no limit", min=0.0)
     cloud_min_confidence: float = param(0.05, "points below this confidence are dropped",

@@ -194,7 +194,8 @@ def cloud_from_disparity(pair: StereoPair, disparity, params: Params):
     pair : StereoPair
     disparity : DisparityResult
     params : Params
-        ``cloud.sigma_d`` gives the disparity uncertainty behind ``sigma_z``.
+        ``cloud.sigma_d`` gives the disparity uncertainty behind ``sigma_z``
+        unless the refinement estimated one per pixel (``disparity.sigma_d``).
 
     Returns
     -------
@@ -203,8 +204,13 @@ def cloud_from_disparity(pair: StereoPair, disparity, params: Params):
     """
     from stereomesh.geometry.triangulate import triangulate
 
+    # The refinement's per-pixel sigma when it has one, else the schema's constant.
+    sigma_d = params.cloud.sigma_d
+    per_pixel = getattr(disparity, "sigma_d", None)
+    if per_pixel is not None:
+        sigma_d = np.where(np.isfinite(per_pixel), per_pixel, params.cloud.sigma_d)
     cloud = triangulate(disparity.disparity, pair.rig, pair.colour, disparity.confidence,
-                        sigma_d=params.cloud.sigma_d)
+                        sigma_d=sigma_d)
     figures = {"points": len(cloud)}
     if len(cloud):
         figures.update(median_depth=float(np.median(cloud.points[:, 2])),

@@ -36,6 +36,10 @@ class RectifiedRig:
         Unit of ``baseline`` and of every length derived from it.
     metric : bool
         False when the baseline is nominal (scale unknown).
+    baseline_std, focal_std_px : float or None
+        One-sigma uncertainty of the baseline (in ``units``) and of the focal
+        length (pixels) when the calibration states them; they set the scale
+        uncertainty in the report (``report.accuracy_statement``).
     """
 
     focal_px: float
@@ -46,6 +50,8 @@ class RectifiedRig:
     image_size: tuple[int, int] = (0, 0)
     units: str = "m"
     metric: bool = True
+    baseline_std: float | None = None
+    focal_std_px: float | None = None
 
     @property
     def Q(self) -> np.ndarray:  # noqa: N802  (OpenCV's name for this matrix)
@@ -79,6 +85,9 @@ class RectifiedRig:
         out["image_size"] = list(self.image_size)
         out["rectified"] = True
         out.pop("metric")
+        for key in ("baseline_std", "focal_std_px"):
+            if out[key] is None:
+                out.pop(key)
         return out
 
 

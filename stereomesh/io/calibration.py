@@ -94,6 +94,18 @@ def rig_from_dict(data: dict, source: str = "calibration") -> RectifiedRig:
     if values["focal_px"] <= 0 or values["baseline"] <= 0:
         raise InputError(f"{source}: focal_px and baseline must be positive")
     metres, units = _units(data.get("units", "m"), source)
+    stds = {}
+    for key in ("baseline_std", "focal_std_px"):
+        value = data.get(key)
+        if value is None:
+            stds[key] = None
+            continue
+        if isinstance(value, bool) or not isinstance(value, int | float) or not (
+                math.isfinite(value) and value >= 0):
+            raise InputError(f"{source}: {key} must be a number >= 0, got {value!r}")
+        stds[key] = float(value)
+    if stds["baseline_std"] is not None:
+        stds["baseline_std"] *= metres or 1.0
     return RectifiedRig(
         focal_px=values["focal_px"],
         cx=values["cx"],
@@ -103,6 +115,7 @@ def rig_from_dict(data: dict, source: str = "calibration") -> RectifiedRig:
         image_size=size,
         units="m" if metres else "unscaled",
         metric=metres is not None,
+        **stds,
     )
 
 

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 
-SUBPIXEL_METHODS = ("parabola", "equiangular", "none")
+SUBPIXEL_METHODS = ("parabola", "equiangular", "none", "alignment")
 
 
 def subpixel_offset(
@@ -86,3 +86,208 @@ def speckle_mask(disparity: np.ndarray, max_size: int, max_diff: float) -> np.nd
     marked = fixed.copy()
     cv2.filterSpeckles(marked, -16, int(max_size), int(round(max_diff * 16)))
     return _kernels.newly_marked(fixed, marked, np.int16(-16))
+
+
+def align_subpixel(
+    left: np.ndarray,
+    right: np.ndarray,
+    disparity: np.ndarray,
+    window: tuple[int, int] = (9, 7),
+    support_tol: float = 1.0,
+    iterations: int = 1,
+    max_shift: float = 1.0,
+    passes: int = 2,
+    strip_rows: int = 256,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Sub-pixel disparity by local image alignment on a slanted window.
+
+    Starting from ``disparity`` (the solver's winner, usually with a parabola
+    fit), each pixel's disparity is fitted by 1-D Lucas–Kanade (Lucas & Kanade
+    1981), i.e. Gauss–Newton on the intensities of a window: the left window
+    is compared with the right image sampled along the row at
+    ``x − (d + a·i + b·j)``, where the slopes ``a, b`` of the disparity plane
+    come from a least-squares fit of the neighbours' initial disparities (a
+    slanted support window, as in Bleyer, Rhemann & Rother 2011), and only
+    neighbours within ``support_tol`` of the centre's disparity take part (the
+    window stops at depth edges). Each step also fits a gain and an offset, so
+    exposure differences between the cameras do not bias the fit. The right
+    image is interpolated with a cubic kernel: linear interpolation smooths by
+    an amount that depends on the fractional position and pulls estimates to
+    whole pixels (Shimizu & Okutomi 2005 describe this pixel locking).
+
+    Parameters
+    ----------
+    left, right : (H, W) float32
+        Rectified grey images, any intensity scale.
+    disparity : (H, W) float32
+        Starting disparity in pixels, NaN where invalid (left untouched).
+    window : (int, int)
+        Window width and height, odd, pixels.
+    support_tol : float
+        Neighbours whose starting disparity differs from the centre's by more
+        than this (pixels) are left out of the window and the plane fit.
+    iterations : int
+        Most Gauss–Newton steps; a fit stops once a step is below 0.005 px.
+    max_shift : float
+        A fit moving farther than this from the start (pixels) fails.
+    passes : int
+        Each pass after the first starts from the one before, with the plane's
+        slopes and the support taken from its (far less pixel-locked)
+        disparities, and makes one Gauss–Newton step: on the oblique demo view
+        a second pass takes the mean error from 0.066 to 0.056 px and the
+        fractional histogram's peak from 1.41 to 1.23 times its mean.
+    strip_rows : int
+        Rows solved at a time (bounds the work memory; results do not depend on it).
+
+    Returns
+    -------
+    disparity : (H, W) float32
+        Refined disparity; pixels whose fit failed keep their start.
+    sigma : (H, W) float32
+        Gauss–Newton standard deviation of the offset (residual variance times
+        the inverse normal matrix, over the squared gain), pixels; NaN where
+        the fit failed or the input is NaN. It assumes independent residuals,
+        so callers scale it (see ``disparity.alignment_sigma``).
+    converged : (H, W) bool
+        Where the last step was below 0.005 px.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> x = np.arange(64, dtype=np.float32)
+    >>> right = np.tile(np.sin(x / 3.0) * 60 + 128, (16, 1)).astype(np.float32)
+    >>> left = np.tile(np.sin((x - 5.3) / 3.0) * 60 + 128, (16, 1)).astype(np.float32)
+    >>> d, s, ok = align_subpixel(left, right, np.full((16, 64), 5.0, np.float32))
+    >>> round(float(d[8, 32]), 2)
+    5.3
+    """
+    from stereomesh.matching import _align_kernels
+
+    left, right, disparity, rx, ry = _check_align(left, right, disparity, window)
+    def fit(start, n):
+        # Strips of rows, each with the window's reach of rows around it, so the
+        # interpolation table (16 bytes a pixel) never covers the whole image:
+        # the same results, a few MB instead of 190 MB on a 12 MP image.
+        h = start.shape[0]
+        out = np.empty_like(start)
+        sigma = np.empty_like(start)
+        converged = np.empty(start.shape, bool)
+        for a in range(0, h, strip_rows):
+            b = min(h, a + strip_rows)
+            a0, b0 = max(0, a - 2 * ry), min(h, b + 2 * ry)  # plane fit + window rows
+            table = _align_kernels.cubic_table(right[a0:b0])
+            part = _align_kernels.align_subpixel_kernel(
+                left[a0:b0], table, start[a0:b0], rx, ry, float(support_tol), n,
+                float(max_shift))
+            for whole, piece in zip((out, sigma, converged), part, strict=True):
+                whole[a:b] = piece[a - a0 : b - a0]
+        return out, sigma, converged
+
+    return _passes(fit, disparity, int(iterations), int(passes))
+
+
+def _passes(fit, disparity, iterations, passes):
+    """Run ``fit(start, iterations)`` ``passes`` times, each from the one before."""
+    d, sigma, converged = fit(disparity, iterations)
+    for _ in range(passes - 1):
+        d, s, converged = fit(d, 1)
+        # A pixel whose later fit failed keeps the earlier fit and its sigma.
+        sigma = np.where(np.isnan(s), sigma, s).astype(np.float32)
+    return d, sigma, converged
+
+
+def _check_align(left, right, disparity, window):
+    arrays = [np.ascontiguousarray(a, np.float32) for a in (left, right, disparity)]
+    if arrays[0].ndim != 2 or any(a.shape != arrays[0].shape for a in arrays):
+        raise ValueError("left, right and disparity must be (H, W) arrays of one shape, got "
+                         f"{[a.shape for a in arrays]}")
+    w, h = (int(v) for v in window)
+    if w < 3 or h < 1 or w % 2 == 0 or h % 2 == 0:
+        raise ValueError(f"window sides must be odd (width at least 3), got {w}x{h}")
+    return (*arrays, w // 2, h // 2)
+
+
+def _cubic_reference(rows: np.ndarray, xr: np.ndarray):
+    """Keys (a = −1/2) cubic value and derivative of ``rows[k]`` at ``xr[k]``, numpy."""
+    i = np.floor(xr).astype(np.int64)
+    t = xr - i
+    k = np.arange(len(rows))
+    taps = [rows[k, i + o] for o in (-1, 0, 1, 2)]
+    w = [-0.5 * t**3 + t**2 - 0.5 * t, 1.5 * t**3 - 2.5 * t**2 + 1.0,
+         -1.5 * t**3 + 2.0 * t**2 + 0.5 * t, 0.5 * t**3 - 0.5 * t**2]
+    dw = [-1.5 * t**2 + 2.0 * t - 0.5, 4.5 * t**2 - 5.0 * t,
+          -4.5 * t**2 + 4.0 * t + 0.5, 1.5 * t**2 - t]
+    value = sum(a * b for a, b in zip(taps, w, strict=True))
+    return value, sum(a * b for a, b in zip(taps, dw, strict=True))
+
+
+def align_subpixel_reference(left, right, disparity, window=(9, 7), support_tol=1.0,
+                             iterations=1, max_shift=1.0, passes=2):
+    """Slow numpy version of :func:`align_subpixel` (same results), for the tests.
+
+    Pixel by pixel in Python with vectorised windows: meant for small images.
+    """
+    left, right, init, rx, ry = _check_align(left, right, disparity, window)
+    return _passes(lambda d, n: _align_reference_pass(left, right, d, rx, ry, support_tol, n,
+                                                      max_shift), init, iterations, passes)
+
+
+def _align_reference_pass(left, right, init, rx, ry, support_tol, iterations, max_shift):
+    left, right, init = (a.astype(np.float64) for a in (left, right, init))
+    h, w = init.shape
+    out = init.astype(np.float32).copy()
+    sigma = np.full((h, w), np.nan, np.float32)
+    converged = np.zeros((h, w), bool)
+    jj, ii = np.mgrid[-ry:ry + 1, -rx:rx + 1]
+    jj, ii = jj.ravel(), ii.ravel()
+    for y, x in zip(*np.nonzero(np.isfinite(init)), strict=True):
+        yy, xx = y + jj, x + ii
+        inside = (yy >= 0) & (yy < h) & (xx >= 0) & (xx < w)
+        yy, xx, i, j = yy[inside], xx[inside], ii[inside], jj[inside]
+        dq = init[yy, xx] - init[y, x]
+        same = np.abs(dq) <= support_tol
+        yy, xx, i, j, dq = yy[same], xx[same], i[same], j[same], dq[same]
+        a = b = 0.0
+        if len(dq) >= 6:
+            design = np.column_stack([np.ones(len(dq)), i, j]).astype(np.float64)
+            normal = design.T @ design
+            if abs(np.linalg.det(normal)) > 1e-9:
+                _, a, b = np.linalg.solve(normal, design.T @ dq)
+                a, b = float(np.clip(a, -1, 1)), float(np.clip(b, -1, 1))
+        delta = 0.0
+        var = np.nan
+        ok = False
+        failed = False
+        for _ in range(iterations):
+            xr = xx - (init[y, x] + delta + a * i + b * j)
+            use = (xr >= 1.0) & (xr < w - 2.0)
+            if use.sum() < 8:
+                failed = True
+                break
+            r, g = _cubic_reference(right[yy[use]], xr[use])
+            lv = left[yy[use], xx[use]]
+            design = np.column_stack([r, np.ones(len(r)), g])
+            normal = design.T @ design
+            if not abs(np.linalg.det(normal)) > 1e-9:
+                failed = True
+                break
+            gain, offset, c = np.linalg.solve(normal, design.T @ lv)
+            if gain <= 0.05:
+                failed = True
+                break
+            step = -c / gain
+            resid = lv - design @ np.array([gain, offset, c])
+            var = (resid @ resid) / max(len(r) - 3.0, 1.0) * np.linalg.inv(normal)[2, 2] / gain**2
+            delta += step
+            if not abs(delta) <= max_shift:
+                failed = True
+                break
+            if abs(step) < 0.005:
+                ok = True
+                break
+        if failed:
+            continue
+        out[y, x] = init[y, x] + delta
+        sigma[y, x] = np.sqrt(var)
+        converged[y, x] = ok
+    return out, sigma, converged

@@ -1,49 +1,12 @@
-"""Render the demo scene: a synthetic, calibrated, rectified stereo pair with ground truth.
-
-The scene is invented for this package: a weathered stone doorway with a carved
-lintel, set in a rough plastered wall.  A smooth painted plaque on the wall is a
-deliberately low-texture patch and a granite pillar standing in front of the wall
-is a deliberate occluder (wall that the left camera sees beside the pillar is
-hidden from the right camera).
-
-Every surface is textured by value noise evaluated on *world* coordinates, so both
-cameras see the same texture.  Each pixel is ray-cast against the scene (2 x 2
-supersamples, Lambertian shading from one fixed light, no cast shadows); the ground
-truth (depth, disparity, occlusion, a mesh) comes from the same ray-caster at the
-left pixel centres, so it agrees with the images to well under a millimetre.
-
-Run ``python -m stereomesh.demo_scene --out demo_data [--width W]``.
-
-Geometry, metres, left camera frame (x right, y down, z forward):
-
-* wall: height field ``Z = 3.5 + undulation + plaster roughness``;
-* door opening ``|X| <= 0.42, Y >= -0.50``, its wooden door set back at ``Z = 3.85``;
-* stone surround 4 cm proud of the wall: jambs to ``|X| <= 0.58`` below the
-  lintel, lintel ``|X| <= 0.66, -0.86 <= Y < -0.50`` with a sunken panel of carved
-  rosettes up to about 4 cm high;
-* painted plaque ``-1.16 <= X <= -0.80, -0.42 <= Y <= 0.04``, 8 mm proud and smooth;
-* pillar: vertical cylinder of radius 0.12 with its axis at ``X = 0.75, Z = 2.30``.
-
-The wall, surround, door and plaque form one height field whose pieces are smooth,
-so each piece is solved by Newton's method along the ray, and whose steps between
-pieces are vertical faces found where the ray crosses a piece's edge.  The pillar
-is intersected analytically.
-"""
+"""The demo scene's layout, textures and ray-caster (see :mod:`stereomesh.demo_scene`)."""
 
 from __future__ import annotations
 
-import argparse
-import json
-import sys
-import time
 from dataclasses import dataclass
-from pathlib import Path
 
 import cv2
 import numpy as np
 from scipy import sparse
-
-__all__ = ["render_demo_scene", "write_demo_scene", "main"]
 
 BASE_WIDTH = 640
 BASE_FOCAL = 700.0
@@ -411,6 +374,11 @@ class _Texture:
         return self._sample(self.albedo, X, Y)
 
 
+def _at(origin, idx):
+    """``origin`` at the rays ``idx``: a number stays, an array is indexed."""
+    return origin[idx] if np.ndim(origin) else origin
+
+
 def _grid(box, texel):
     x0, x1, y0, y1 = box
     x0, x1, y0, y1 = x0 - _MARGIN, x1 + _MARGIN, y0 - _MARGIN, y1 + _MARGIN
@@ -430,13 +398,27 @@ class _Hits:
 
 
 class _Scene:
-    """The baked scene and its ray-caster; rays start at (ox, 0, 0) with direction (u, v, 1)."""
+    """The baked scene and its ray-caster.
 
-    def __init__(self, texel: float):
+    A ray is ``(ox + u Z, oy + v Z, Z)`` for ``Z`` from 0: it crosses the plane
+    ``Z = 0`` at ``(ox, oy)`` with direction ``(u, v, 1)``; ``ox``, ``oy`` are
+    numbers or one per ray (rays of a turned camera). ``window`` is the world
+    box ``(x0, x1, y0, y1)`` the textures cover; the frontal view needs only
+    the default.
+    """
+
+    def __init__(self, texel: float, window: tuple | None = None):
+        self.boxes = dict(_PIECE_BOX)
+        # Frontal rays never need marching; leaving it off keeps that render as it was.
+        self.march = window is not None
+        if window is not None:
+            self.boxes[WALL] = tuple(window)
+            self.boxes[FRAME] = (*_PIECE_BOX[FRAME][:3], window[3])
+            self.boxes[DOOR] = (*_PIECE_BOX[DOOR][:3], window[3])
         self.tex: dict[int, _Texture] = {}
         self.depth_range: dict[int, tuple[float, float]] = {}
         for piece, bake in _BAKERS.items():
-            xs, ys = _grid(_PIECE_BOX[piece], texel)
+            xs, ys = _grid(self.boxes[piece], texel)
             offset, colour = bake(xs, ys, texel)
             offset = np.broadcast_to(offset, (ys.size, xs.size)).astype(np.float32)
             gy, gx = np.gradient(offset, texel)
@@ -460,7 +442,7 @@ class _Scene:
                 h[idx] = self.tex[p].geo_at(X[idx], Y[idx])[:, 0]
         return h
 
-    def _solve_piece(self, piece, ox, u, v):
+    def _solve_piece(self, piece, ox, oy, u, v):
         """Newton along the ray on one piece's smooth surface, extended past its edges.
 
         Along any ray the surface slope ``u dZ/dX + v dZ/dY`` stays below 1 (at most
@@ -472,13 +454,38 @@ class _Scene:
         z = np.full(u.size, 0.5 * (lo + hi), np.float32)
         step = np.zeros_like(z)
         for _ in range(_NEWTON_STEPS):
-            g = tex.geo_at(ox + u * z, v * z)
+            g = tex.geo_at(ox + u * z, oy + v * z)
             slope = u * g[:, 1] + v * g[:, 2]
             step = (z - g[:, 0]) / np.maximum(1 - slope, 0.3)
             z = np.clip(z - step, lo, hi)
-        return z, np.abs(step) < 1e-4
+        ok = np.abs(step) < 1e-4
+        if self.march and not ok.all():
+            # Rays of a turned camera can meet the carved relief at slopes above 1,
+            # where Newton's method may cycle: march to the first crossing instead.
+            bad = np.flatnonzero(~ok)
+            z[bad], ok[bad] = self._march(tex, lo, hi, _at(ox, bad), _at(oy, bad), u[bad],
+                                          v[bad])
+        return z, ok
 
-    def cast(self, ox: float, u: np.ndarray, v: np.ndarray) -> _Hits:
+    @staticmethod
+    def _march(tex, lo, hi, ox, oy, u, v):
+        """First crossing of ``Z = height`` along rays: 64 samples, then bisection."""
+        zs = np.linspace(lo, hi, 64, dtype=np.float32)
+        above = np.empty((zs.size, u.size), bool)
+        for k, zk in enumerate(zs):
+            above[k] = zk >= tex.geo_at(ox + u * zk, oy + v * zk)[:, 0]
+        first = np.argmax(above, axis=0)
+        found = above[first, np.arange(u.size)]
+        a = zs[np.maximum(first - 1, 0)].copy()
+        b = zs[first].copy()
+        for _ in range(24):
+            m = 0.5 * (a + b)
+            up = m >= tex.geo_at(ox + u * m, oy + v * m)[:, 0]
+            b = np.where(up, m, b)
+            a = np.where(up, a, m)
+        return b.astype(np.float32), found
+
+    def cast(self, ox, u: np.ndarray, v: np.ndarray, oy=0.0) -> _Hits:
         """First hit of each ray: depth Z and what was hit."""
         n = u.size
         z = np.full(n, np.inf, np.float32)
@@ -500,13 +507,13 @@ class _Scene:
                 ay[sel] = fy[better]
 
         for piece in _PIECES:
-            bx0, bx1, by0, by1 = _PIECE_BOX[piece]
+            bx0, bx1, by0, by1 = self.boxes[piece]
             lo, hi = self.depth_range[piece]
             if piece == WALL:
                 idx = np.arange(n)
             else:
                 xa, xb = ox + u * lo, ox + u * hi
-                ya, yb = v * lo, v * hi
+                ya, yb = oy + v * lo, oy + v * hi
                 idx = np.flatnonzero(
                     (np.maximum(xa, xb) >= bx0)
                     & (np.minimum(xa, xb) <= bx1)
@@ -515,8 +522,9 @@ class _Scene:
                 )
             if not idx.size:
                 continue
-            zc, ok = self._solve_piece(piece, ox, u[idx], v[idx])
-            ok &= _piece_of(ox + u[idx] * zc, v[idx] * zc) == piece
+            oxi, oyi = _at(ox, idx), _at(oy, idx)
+            zc, ok = self._solve_piece(piece, oxi, oyi, u[idx], v[idx])
+            ok &= _piece_of(oxi + u[idx] * zc, oyi + v[idx] * zc) == piece
             take(idx[ok], zc[ok], piece)
 
         # Vertical faces: where the ray passes over an edge while in front of the
@@ -525,13 +533,14 @@ class _Scene:
         for axis, lines, d in ((1, _X_LINES, u), (2, _Y_LINES, v)):
             for c in lines:
                 with np.errstate(divide="ignore", invalid="ignore"):
-                    zb = ((c - ox) if axis == 1 else c) / d
+                    zb = ((c - ox) if axis == 1 else (c - oy)) / d
                 idx = np.flatnonzero((zb > self.zmin) & (zb < self.zmax))
                 if not idx.size:
                     continue
                 zb = zb[idx].astype(np.float32)
                 s = np.sign(d[idx]).astype(np.float32)
-                other = (ox + u[idx] * zb) if axis == 2 else (v[idx] * zb)
+                other = ((_at(ox, idx) + u[idx] * zb) if axis == 2
+                         else (_at(oy, idx) + v[idx] * zb))
                 cx = np.full(idx.size, c, np.float32)
                 px, py = (cx, other) if axis == 1 else (other, cx)
                 if axis == 1:
@@ -563,11 +572,11 @@ class _Scene:
             raise RuntimeError("demo scene: a ray missed every surface")
         return _Hits(z, kind, face, sign, ax, ay)
 
-    def radiance(self, ox: float, u: np.ndarray, v: np.ndarray) -> np.ndarray:
+    def radiance(self, ox, u: np.ndarray, v: np.ndarray, oy=0.0) -> np.ndarray:
         """Lambertian radiance (n, 3), 1.0 = white lit head-on at full strength."""
-        hit = self.cast(ox, u, v)
+        hit = self.cast(ox, u, v, oy)
         z = hit.z
-        X, Y = ox + u * z, v * z
+        X, Y = ox + u * z, oy + v * z
         normal = np.zeros((z.size, 3), np.float32)
         albedo = np.empty((z.size, 3), np.float32)
         for piece in _PIECES:
@@ -591,348 +600,3 @@ class _Scene:
             albedo[idx] = self.pillar.albedo_at(PILLAR_R * np.arctan2(dx, -dz), Y[idx])
         lit = _AMBIENT + _DIFFUSE * np.maximum(normal @ _LIGHT, 0)
         return albedo * lit[:, None]
-
-
-# ------------------------------------------------------------------- rendering
-
-
-def _rig(width: int) -> dict:
-    if not isinstance(width, int | np.integer) or width % 4:
-        raise ValueError(f"width must be a multiple of 4, got {width!r}")
-    if not MIN_WIDTH <= width <= MAX_WIDTH:
-        raise ValueError(f"width must be in [{MIN_WIDTH}, {MAX_WIDTH}], got {width}")
-    width = int(width)
-    height = width * 3 // 4
-    return {
-        "rectified": True,
-        "image_size": [width, height],
-        "focal_px": BASE_FOCAL * width / BASE_WIDTH,
-        "cx": (width - 1) / 2,
-        "cy": (height - 1) / 2,
-        "baseline": BASELINE,
-        "doffs": 0.0,
-        "units": "m",
-    }
-
-
-def _strips(height: int, rays_per_row: int):
-    step = max(1, _RAYS_PER_STRIP // rays_per_row)
-    for r0 in range(0, height, step):
-        yield r0, min(height, r0 + step)
-
-
-def _render_view(
-    scene: _Scene, calib: dict, ox: float, gain: float, offset: float, seed: int
-) -> np.ndarray:
-    width, height = calib["image_size"]
-    f, cx, cy = calib["focal_px"], calib["cx"], calib["cy"]
-    sub = np.array(_SUBSAMPLES, np.float32)
-    image = np.empty((height, width, 3), np.uint8)
-    cols = np.arange(width, dtype=np.float32)
-    scale = np.float32(255.0 * _EXPOSURE * gain)
-    for r0, r1 in _strips(height, width * len(sub)):
-        rows = np.arange(r0, r1, dtype=np.float32)
-        u = np.broadcast_to(
-            (cols[None, :, None] + sub[:, 0] - cx) / f, (r1 - r0, width, len(sub))
-        ).ravel()
-        v = np.broadcast_to(
-            (rows[:, None, None] + sub[:, 1] - cy) / f, (r1 - r0, width, len(sub))
-        ).ravel()
-        rgb = scene.radiance(ox, u.astype(np.float32), v.astype(np.float32))
-        value = rgb.reshape(r1 - r0, width, len(sub), 3).mean(axis=2) * scale + np.float32(offset)
-        for i, row in enumerate(range(r0, r1)):
-            # Seeded per row, so the noise does not depend on how rows are grouped.
-            rng = np.random.default_rng([seed, row])
-            value[i] += rng.normal(0.0, _NOISE_SIGMA, (width, 3)).astype(np.float32)
-        image[r0:r1] = np.clip(np.rint(value), 0, 255).astype(np.uint8)
-    return image
-
-
-def _ground_truth(scene: _Scene, calib: dict) -> tuple[np.ndarray, np.ndarray]:
-    """Depth at the left pixel centres and the mask of pixels the right camera cannot see."""
-    width, height = calib["image_size"]
-    f, cx, cy, baseline = calib["focal_px"], calib["cx"], calib["cy"], calib["baseline"]
-    depth = np.empty((height, width), np.float32)
-    occluded = np.empty((height, width), np.uint8)
-    cols = np.arange(width, dtype=np.float32)
-    for r0, r1 in _strips(height, width):
-        rows = np.arange(r0, r1, dtype=np.float32)
-        u = np.broadcast_to((cols[None, :] - cx) / f, (r1 - r0, width)).ravel().astype(np.float32)
-        v = np.broadcast_to((rows[:, None] - cy) / f, (r1 - r0, width)).ravel().astype(np.float32)
-        z = scene.cast(0.0, u, v).z
-        # The ray from the right camera through the same 3-D point.
-        u_r = (u * z - baseline) / z
-        x_r = u_r * f + cx
-        inside = np.flatnonzero((x_r >= -0.5) & (x_r <= width - 0.5))
-        # Codes as in the pipeline's occlusion.png: 1 hidden by a nearer surface,
-        # 4 outside the right image.
-        occ = np.full(z.size, 4, np.uint8)
-        z_r = scene.cast(baseline, u_r[inside], v[inside]).z
-        occ[inside] = z_r < z[inside] * (1 - _OCCLUSION_TOL)
-        depth[r0:r1] = z.reshape(r1 - r0, width)
-        occluded[r0:r1] = occ.reshape(r1 - r0, width)
-    return depth, occluded
-
-
-def _grid_mesh(depth: np.ndarray, calib: dict, step: int) -> tuple[np.ndarray, np.ndarray]:
-    """Triangulate the depth map every ``step`` pixels, cutting at depth discontinuities."""
-    f, cx, cy = calib["focal_px"], calib["cx"], calib["cy"]
-    rows = np.arange(0, depth.shape[0], step)
-    cols = np.arange(0, depth.shape[1], step)
-    z = depth[np.ix_(rows, cols)].astype(np.float64)
-    x = (cols[None, :] - cx) / f * z
-    y = (rows[:, None] - cy) / f * z
-    vertices = np.stack([x, y, z], -1).reshape(-1, 3).astype(np.float32)
-    nr, nc = z.shape
-    ids = np.arange(nr * nc).reshape(nr, nc)
-    # Corner order makes each triangle face the camera (normal towards -z).
-    tris = [(ids[:-1, :-1], ids[1:, :-1], ids[:-1, 1:]), (ids[:-1, 1:], ids[1:, :-1], ids[1:, 1:])]
-    zf = z.ravel()
-    faces = []
-    for a, b, c in tris:
-        t = np.stack([a.ravel(), b.ravel(), c.ravel()], 1)
-        zt = zf[t]
-        keep = zt.max(1) <= zt.min(1) * (1 + _MESH_JUMP)
-        faces.append(t[keep])
-    faces = np.concatenate(faces).astype(np.int32)
-    return vertices, faces
-
-
-def _default_mesh_step(width: int) -> int:
-    # About 34 000 vertices at any width: a grid of about 15 mm on the wall keeps the
-    # centimetre-scale relief and steps, and stays small enough to commit at 640 px.
-    return max(1, round(width / 213))
-
-
-def _texel_for(focal: float) -> float:
-    # A texel of about 1.5 pixel footprints on the wall keeps the baked maps to a few
-    # hundred MB at 12 MP.  Below 1.2 mm the finest noise octaves (a few mm) gain
-    # nothing; above 2.5 mm the 640-pixel image would see the texels.
-    return float(np.clip(1.5 * Z_WALL / focal, 0.0012, 0.0025))
-
-
-def render_demo_scene(width: int = BASE_WIDTH, mesh_step: int | None = None) -> dict:
-    """Render the demo stereo pair and its ground truth.
-
-    Parameters
-    ----------
-    width : int
-        Image width in pixels, a multiple of 4 in [64, 4000]; the height is
-        ``3 * width / 4`` and the focal length ``700 * width / 640`` pixels, so
-        the field of view and the scene stay the same.
-    mesh_step : int, optional
-        Pixel spacing of the ground-truth mesh grid; default about ``width / 213``,
-        which keeps the mesh at about 34 000 vertices at any width.
-
-    Returns
-    -------
-    dict
-        ``left``, ``right``: uint8 (H, W, 3) RGB; ``gt_disparity``, ``gt_depth``:
-        float32 (H, W), disparity in pixels and depth in metres at the left pixel
-        centres; ``gt_occlusion``: uint8 (H, W), 1 where the left pixel's surface
-        point is hidden from the right camera by a nearer surface, 4 where it falls
-        outside the right image, else 0; ``calib``: the rectified
-        calibration dict; ``gt_mesh_vertices`` float32 (N, 3), metres, left camera
-        frame, and ``gt_mesh_faces`` int32 (M, 3).
-
-    Examples
-    --------
-    >>> scene = render_demo_scene(128)
-    >>> scene["left"].shape, scene["calib"]["focal_px"]
-    ((96, 128, 3), 140.0)
-    """
-    calib = _rig(width)
-    scene = _Scene(_texel_for(calib["focal_px"]))
-    left = _render_view(scene, calib, 0.0, 1.0, 0.0, _SEED_LEFT)
-    right = _render_view(scene, calib, BASELINE, _RIGHT_GAIN, _RIGHT_OFFSET, _SEED_RIGHT)
-    depth, occluded = _ground_truth(scene, calib)
-    disparity = (np.float32(calib["focal_px"] * BASELINE) / depth).astype(np.float32)
-    step = mesh_step or _default_mesh_step(calib["image_size"][0])
-    vertices, faces = _grid_mesh(depth, calib, step)
-    return {
-        "left": left,
-        "right": right,
-        "gt_disparity": disparity,
-        "gt_occlusion": occluded,
-        "gt_depth": depth,
-        "calib": calib,
-        "gt_mesh_vertices": vertices,
-        "gt_mesh_faces": faces,
-    }
-
-
-# ---------------------------------------------------------------------- writing
-
-
-def _write_ply(path: Path, vertices: np.ndarray, faces: np.ndarray) -> None:
-    header = (
-        "ply\nformat binary_little_endian 1.0\n"
-        "comment stereomesh demo scene ground truth, metres, left camera frame\n"
-        f"element vertex {len(vertices)}\n"
-        "property float x\nproperty float y\nproperty float z\n"
-        f"element face {len(faces)}\n"
-        "property list uchar int vertex_indices\nend_header\n"
-    )
-    rec = np.empty(len(faces), dtype=[("n", "u1"), ("i", "<i4", (3,))])
-    rec["n"] = 3
-    rec["i"] = faces
-    with open(path, "wb") as fh:
-        fh.write(header.encode("ascii"))
-        fh.write(np.ascontiguousarray(vertices, "<f4").tobytes())
-        fh.write(rec.tobytes())
-
-
-_README = """\
-# Demo scene
-
-An invented, synthetic scene: a weathered stone doorway with a carved lintel, set
-in a rough plastered wall.  A smooth painted plaque to the left of the door is a
-deliberately low-texture patch; a granite pillar to the right stands in front of
-the wall and hides part of it from the right camera.  Nothing here was photographed.
-
-Generated by `python -m stereomesh.demo_scene --out demo_data` (module
-`stereomesh/demo_scene.py`); the output is deterministic.
-
-## Rig
-
-Rectified pair, {w} x {h} pixels, focal length {f:g} px, principal point
-({cx:g}, {cy:g}), baseline {b:g} m (right camera at +x), both cameras looking
-down +z.  The wall is about 3.5 m away; disparities lie in [{dmin:.1f}, {dmax:.1f}] px.
-The right image has a different exposure (gain 0.9, offset +8) and both carry a
-little sensor noise.
-
-## Files
-
-- `left.png`, `right.png`: the pair, 8-bit RGB.
-- `calib.json`: the rectified calibration.
-- `gt_disparity.pfm`: float32 disparity of the left image at pixel centres.
-- `gt_occlusion.png`: 1 where a left pixel's surface point is hidden from the
-  right camera by a nearer surface, 4 where it falls outside the right image,
-  else 0 (the codes of the pipeline's `occlusion.png`).  Non-zero on {occ:.1f} % of
-  the pixels: the band along the left edge that the right image never sees
-  ({band:.1f} %), and most of the rest on the wall beside the pillar.
-- `gt_mesh.ply`: the surface the left camera sees, a grid mesh from the
-  ground-truth depth every {step} pixels, cut at depth jumps over 3 %; metres,
-  left camera frame.
-"""
-
-
-DEMO_FILES = ("left.png", "right.png", "calib.json", "params.toml")
-"""The files ``stereomesh demo`` runs on."""
-
-
-def demo_disparity_range(gt_disparity: np.ndarray) -> str:
-    """The search range the demo runs with: the true disparities and a margin.
-
-    The margin (at least 4 px below, 16 px above, ends on multiples of 16 and
-    64) keeps the truth away from the ends of the range, where winners are
-    rejected as "outside the search range".
-
-    Examples
-    --------
-    >>> demo_disparity_range(np.array([72.6, 128.4]))
-    '64:192'
-    """
-    lo = 16 * int(np.floor((float(np.nanmin(gt_disparity)) - 4.0) / 16.0))
-    hi = 64 * int(np.ceil((float(np.nanmax(gt_disparity)) + 16.0) / 64.0))
-    return f"{lo}:{hi}"
-
-
-def write_demo_scene(out_dir: str | Path, width: int = BASE_WIDTH) -> dict[str, Path]:
-    """Render the demo scene and write it into ``out_dir``.
-
-    Parameters
-    ----------
-    out_dir : str or Path
-        Folder to write into (created if missing).
-    width : int
-        Image width, see :func:`render_demo_scene`.
-
-    Returns
-    -------
-    dict of str to Path
-        ``left``, ``right``, ``calib``, ``params`` (the demo's parameter
-        file), ``gt_disparity``, ``gt_occlusion``, ``gt_mesh`` and ``readme`` paths.
-    """
-    out = Path(out_dir)
-    out.mkdir(parents=True, exist_ok=True)
-    data = render_demo_scene(width)
-    calib = data["calib"]
-    paths = {
-        name: out / fname
-        for name, fname in (
-            ("left", "left.png"),
-            ("right", "right.png"),
-            ("calib", "calib.json"),
-            ("params", "params.toml"),
-            ("gt_disparity", "gt_disparity.pfm"),
-            ("gt_occlusion", "gt_occlusion.png"),
-            ("gt_mesh", "gt_mesh.ply"),
-            ("readme", "README.md"),
-        )
-    }
-    png = [cv2.IMWRITE_PNG_COMPRESSION, 9]
-    for name in ("left", "right"):
-        if not cv2.imwrite(str(paths[name]), cv2.cvtColor(data[name], cv2.COLOR_RGB2BGR), png):
-            raise OSError(f"{paths[name]}: could not write")
-    if not cv2.imwrite(str(paths["gt_occlusion"]), data["gt_occlusion"], png):
-        raise OSError(f"{paths['gt_occlusion']}: could not write")
-    if not cv2.imwrite(str(paths["gt_disparity"]), data["gt_disparity"]):
-        raise OSError(f"{paths['gt_disparity']}: could not write")
-    paths["calib"].write_text(json.dumps(calib) + "\n", encoding="utf-8")
-    paths["params"].write_text(
-        "# Parameters of the demo run: the search range covers the true disparities.\n"
-        f'[disparity]\ndisp_range = "{demo_disparity_range(data["gt_disparity"])}"\n',
-        encoding="utf-8",
-    )
-    _write_ply(paths["gt_mesh"], data["gt_mesh_vertices"], data["gt_mesh_faces"])
-    w, h = calib["image_size"]
-    disp = data["gt_disparity"]
-    paths["readme"].write_text(
-        _README.format(
-            w=w,
-            h=h,
-            f=calib["focal_px"],
-            cx=calib["cx"],
-            cy=calib["cy"],
-            b=calib["baseline"],
-            dmin=float(disp.min()),
-            dmax=float(disp.max()),
-            occ=100.0 * float((data["gt_occlusion"] > 0).mean()),
-            band=100.0 * float((np.arange(w) - disp < -0.5).mean()),
-            step=_default_mesh_step(w),
-        ),
-        encoding="utf-8",
-    )
-    return paths
-
-
-def main(argv: list[str] | None = None) -> int:
-    """Command line: ``python -m stereomesh.demo_scene --out DIR [--width W]``."""
-    parser = argparse.ArgumentParser(
-        prog="python -m stereomesh.demo_scene",
-        description="Render the synthetic demo stereo pair and its ground truth.",
-    )
-    parser.add_argument("--out", type=Path, default=Path("demo_data"), help="output folder")
-    parser.add_argument(
-        "--width",
-        type=int,
-        default=BASE_WIDTH,
-        help=f"image width, multiple of 4 in [{MIN_WIDTH}, {MAX_WIDTH}] "
-        f"(default {BASE_WIDTH}); height is 3/4 of it",
-    )
-    args = parser.parse_args(argv)
-    try:
-        _rig(args.width)
-    except ValueError as exc:
-        parser.error(str(exc))
-    start = time.perf_counter()
-    paths = write_demo_scene(args.out, args.width)
-    for path in paths.values():
-        print(path)
-    print(f"rendered in {time.perf_counter() - start:.1f} s", file=sys.stderr)
-    return 0
-
-
-if __name__ == "__main__":
-    raise SystemExit(main())
