@@ -408,7 +408,9 @@ def _killed():
         t_end = time.monotonic() + 60
         while time.monotonic() < t_end:
             if first.busy() is not None:
-                time.sleep(1.0)  # well inside the disparity stage
+                # Soon after the request starts: the whole action takes a few
+                # seconds, and the faster the pipeline gets the less room a late kill has.
+                time.sleep(0.2)
                 os.kill(pid, signal.SIGKILL)
                 return
             time.sleep(0.05)
