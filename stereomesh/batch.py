@@ -344,12 +344,26 @@ def convert_pair(task: dict, notify=None) -> dict:
 
 # --- local worker processes -------------------------------------------------------------------
 
+def _limit_opencv_threads(threads: int) -> None:
+    """OpenCV's own pool to the worker's share of the cores.
+
+    Its threads keep spinning for a while after a call (reading, rectifying,
+    previews) and then compete with numba's for the same cores.
+    """
+    with contextlib.suppress(Exception):
+        import cv2
+
+        cv2.setNumThreads(threads)
+
+
 def _local_worker(conn, threads: int, params_dict: dict) -> None:
     """A worker process: warm up, then convert pairs sent over ``conn`` until it closes."""
     # Before numba loads: each worker uses its share of the cores, no more.
     os.environ["NUMBA_NUM_THREADS"] = str(threads)
+    os.environ.setdefault("OMP_NUM_THREADS", str(threads))
     os.environ.setdefault("NUMBA_THREADING_LAYER_PRIORITY", "omp tbb workqueue")
     signal.signal(signal.SIGINT, signal.SIG_IGN)  # the parent decides what an interrupt stops
+    _limit_opencv_threads(threads)
     warm_worker(params_from_dict(params_dict))
     conn.send(("ready", None))
     while True:
@@ -491,6 +505,8 @@ def _dask_convert(task: dict) -> dict:
 
             os.environ["NUMBA_NUM_THREADS"] = str(max(1, get_worker().state.nthreads))
     os.environ.setdefault("NUMBA_THREADING_LAYER_PRIORITY", "omp tbb workqueue")
+    if not _STATE.get("warm"):
+        _limit_opencv_threads(int(os.environ.get("NUMBA_NUM_THREADS", "1")))
     return convert_pair(task)
 
 
@@ -618,6 +634,19 @@ class _Events:
         self.log.close()
 
 
+def _terminate_as_interrupt():
+    """Make SIGTERM (a job scheduler's stop) act like Ctrl-C; the handler it replaced."""
+    import threading
+
+    if threading.current_thread() is not threading.main_thread():
+        return None
+
+    def handler(signum, frame):
+        raise KeyboardInterrupt
+
+    return signal.signal(signal.SIGTERM, handler)
+
+
 def run_batch(
     specs: list[PairSpec],
     out_dir: str | Path,
@@ -712,6 +741,7 @@ def run_batch(
                  + (f" on {cluster}" if cluster else ""))
     t0 = time.perf_counter()
     interrupted = False
+    previous = _terminate_as_interrupt()
     try:
         if tasks:
             if cluster:
@@ -726,6 +756,8 @@ def run_batch(
         events.write("interrupted: pairs not finished are left to the next run")
         raise
     finally:
+        if previous is not None:
+            signal.signal(signal.SIGTERM, previous)
         if bar is not None:
             bar.close()
         _clean_tmp(out)
