@@ -553,6 +553,31 @@ def _run_dask(tasks: list[dict], address: str, events) -> None:
 
 # --- the batch --------------------------------------------------------------------------------
 
+def worker_memory_mb(pixels: int, params: Params) -> float:
+    """Peak memory of a warm worker converting pairs of ``pixels`` pixels, MB.
+
+    The libraries loaded, plus the solver's work memory (a reused workspace
+    grows to the whole image's need, at most ``memory_budget_mb``; see
+    :func:`stereomesh.matching.sgm.memory_bytes`; 256 hypotheses assumed for an
+    automatic range), plus the geometry stages' arrays. Measured here on the
+    640 x 480 demo pair with 128 hypotheses: 830-940 MB per worker; this gives 836.
+
+    Examples
+    --------
+    >>> round(worker_memory_mb(640 * 480, Params().with_overrides({"disp_range": "64:192"})))
+    836
+    """
+    from stereomesh.matching.sgm import memory_bytes
+    from stereomesh.params import parse_disp_range
+
+    dp = params.disparity
+    rng = parse_disp_range(dp.disp_range) if dp.disp_range != "auto" else None
+    n_disp = 256 if rng is None else rng[1] - rng[0]
+    side = max(1, int(pixels ** 0.5))
+    solver = memory_bytes(side, max(1, pixels // side), n_disp, block_rows=side) / 2**20
+    return _WORKER_BASE_MB + min(dp.memory_budget_mb, solver) + pixels * _BYTES_PER_PIXEL / 2**20
+
+
 def default_workers(specs: list[PairSpec], params: Params) -> tuple[int, int]:
     """Worker processes and numba threads each, from the cores and the memory a pair needs.
 
@@ -575,8 +600,7 @@ def default_workers(specs: list[PairSpec], params: Params) -> tuple[int, int]:
             with Image.open(spec.inputs[0]) as im:
                 w, h = im.size
             pixels = max(pixels, w * h // (2 if spec.layout == "side-by-side" else 1))
-    need_mb = (_WORKER_BASE_MB + params.disparity.memory_budget_mb
-               + pixels * _BYTES_PER_PIXEL / 2**20)
+    need_mb = worker_memory_mb(pixels, params)
     available_mb = None
     with contextlib.suppress(OSError, ValueError):
         for line in Path("/proc/meminfo").read_text().splitlines():
@@ -623,12 +647,27 @@ class _Events:
                 self.write(f"{name}: trying again")
                 return {**task, "attempt": task["attempt"] + 1}
             self.failed += 1
+            self._set_aside(name)
         self.outcomes[name] = outcome
         if self.bar is not None:
             self.bar.update(1)
             self.bar.set_postfix_str(f"done {self.done}, failed {self.failed}, "
                                      f"left {self.total - self.done - self.failed}")
         return None
+
+    def _set_aside(self, name: str) -> None:
+        """Move an earlier result of a pair that failed now out of ``DIR/NAME``.
+
+        Only pairs whose fingerprint changed are run, so a folder there holds
+        the result of other inputs or parameters; it is kept, not deleted.
+        """
+        stale = self.out / name
+        if stale.is_dir():
+            dest = self.out / BATCH_DIR / "superseded" / f"{name}.{time.strftime('%Y%m%dT%H%M%S')}"
+            dest.parent.mkdir(parents=True, exist_ok=True)
+            os.replace(stale, dest)
+            self.write(f"{name}: the earlier result (of other inputs or parameters) was moved "
+                       f"to {dest}")
 
     def close(self) -> None:
         self.log.close()

@@ -306,16 +306,21 @@ def test_kill_mid_run_then_resume_redoes_nothing_finished(scene, tmp_path):
     assert {n for n, r in rows.items() if r["status"] == "done"} == set(names) - set(stamps)
     assert not any((out / "_batch" / "tmp").iterdir())
 
-    # A changed input is redone, the rest skipped; the log says how many of each.
+    # A changed input is redone, the rest skipped; the log says how many of each. An input
+    # that changed into a broken one fails, and its earlier result leaves DIR/NAME.
     img = np.array(Image.open(tmp_path / "src" / "k4-left.png"))
     img[0, 0] ^= 1
     Image.fromarray(img).save(tmp_path / "src" / "k4-left.png")
+    (tmp_path / "src" / "k3-left.png").write_bytes(b"broken")
     stamps = {n: (out / n / "report.json").stat().st_mtime_ns for n in names}
     code, stdout, stderr = batch(*args[4:])
-    assert code == 0, stderr
-    changed = {n for n in names if (out / n / "report.json").stat().st_mtime_ns != stamps[n]}
+    assert code == 3, stderr
+    assert [p.name for p in pair_dirs(out)] == ["k1", "k2", "k4"]
+    changed = {n for n in ("k1", "k2", "k4")
+               if (out / n / "report.json").stat().st_mtime_ns != stamps[n]}
     assert changed == {"k4"}
-    assert "3 finished earlier and unchanged, 1 to convert" in (out / "batch.log").read_text()
+    assert "2 finished earlier and unchanged, 2 to convert" in (out / "batch.log").read_text()
+    assert [p.name.split(".")[0] for p in (out / "_batch" / "superseded").iterdir()] == ["k3"]
 
 
 def test_killed_worker_and_timeout_are_recorded_and_retried(scene, tmp_path):
@@ -383,3 +388,23 @@ def test_local_dask_cluster_gives_the_results_of_one_worker(scene, tmp_path):
 
         assert figures(a) == figures(b)
         assert a["batch"]["fingerprint"] == b["batch"]["fingerprint"]
+
+
+def test_summary_flags_pairs_that_need_a_look():
+    from stereomesh.batch import summary_row
+    from stereomesh.io.manifest import PairSpec
+
+    spec = PairSpec("a", [Path("a_L.png"), Path("a_R.png")])
+    report = {"scale": "unscaled", "total_seconds": 3.0,
+              "pair": {"rectification": {"held_out": {"median_px": 1.6}}},
+              "stages": {"disparity": {"density": 0.31, "seconds": 0.2},
+                         "repair": {"filled_vertices": 80, "vertices_after": 1000,
+                                    "faces_after": 1900}}}
+    row = summary_row(spec, "done", report, {})
+    assert row["flags"] == ["low density (31%)", "high rectification residual (1.60 px)",
+                            "unscaled", "many filled vertices (8%)"]
+    good = {"scale": "metric", "pair": {"rectification": {"vertical_residual":
+                                                          {"median_px": 0.2}}},
+            "stages": {"disparity": {"density": 0.8},
+                       "repair": {"filled_vertices": 10, "vertices_after": 1000}}}
+    assert summary_row(spec, "done", good, {})["flags"] == []

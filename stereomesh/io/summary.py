@@ -76,7 +76,7 @@ def _figures(row: dict) -> list[tuple[str, str]]:
 _STYLE = """
 body{font:14px/1.4 sans-serif;margin:1.5em;color:#222;background:#fafafa}
 h1{font-size:1.4em;margin:0 0 .3em}.caution{background:#fff4d6;border:1px solid #e0c36a;
-padding:.5em .8em;margin:.8em 0}.grid{display:flex;flex-wrap:wrap;gap:14px}
+padding:.5em .8em;margin:.8em 0}.grid{display:flex;flex-wrap:wrap;gap:14px;align-items:flex-start}
 .pair{background:#fff;border:1px solid #ccc;border-radius:6px;padding:8px;width:420px}
 .pair.flagged{border-color:#d08a00;box-shadow:0 0 0 2px #f3c66b}
 .pair.failed{border-color:#c33;background:#fff3f3}.thumbs{display:flex;gap:4px}
