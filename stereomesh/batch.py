@@ -651,8 +651,8 @@ class _Events:
         self.outcomes[name] = outcome
         if self.bar is not None:
             self.bar.update(1)
-            self.bar.set_postfix_str(f"done {self.done}, failed {self.failed}, "
-                                     f"left {self.total - self.done - self.failed}")
+            self.bar.set_description_str(f"batch: done {self.done}, failed {self.failed}, "
+                                         f"left {self.total - self.done - self.failed}")
         return None
 
     def _set_aside(self, name: str) -> None:
@@ -771,9 +771,10 @@ def run_batch(
     if progress_bar and tasks:
         from tqdm import tqdm
 
-        bar = tqdm(total=len(tasks), file=sys.stderr, unit="pair", desc="batch",
-                   bar_format="{desc}: {n}/{total} |{bar}| {postfix} [{elapsed}<{remaining}]")
-        bar.set_postfix_str(f"done 0, failed 0, left {len(tasks)}")
+        # One bar: the counts in its description, the time left (ETA) at its end.
+        bar = tqdm(total=len(tasks), file=sys.stderr, unit="pair",
+                   desc=f"batch: done 0, failed 0, left {len(tasks)}",
+                   bar_format="{desc} |{bar}| {n}/{total} [{elapsed}<{remaining}]")
     events = _Events(out, len(tasks), retries, bar)
     events.write(f"batch of {len(specs)} pairs from {source or '?'}: {len(skipped)} finished "
                  f"earlier and unchanged, {len(tasks)} to convert"
