@@ -187,7 +187,8 @@ def warm_worker(params: Params | None = None) -> float:
                     workspace=_workspace(), stop_after="filter_cloud")
         import pymeshlab  # noqa: F401  (its first import takes seconds)
     _STATE["warm"] = True
-    return time.perf_counter() - t
+    _STATE["warm_seconds"] = time.perf_counter() - t
+    return _STATE["warm_seconds"]
 
 
 def _replace_dir(src: Path, dst: Path, trash: Path) -> None:
@@ -271,7 +272,11 @@ def convert_pair(task: dict, notify=None) -> dict:
     spec = PairSpec.from_dict(task["spec"])
     params = params_from_dict(task["params"])
     out = Path(task["out"])
-    warm = warm_worker(params)
+    warm_worker(params)
+    # The first pair of a worker carries its warm-up time; later ones show the reuse.
+    before = _STATE.get("pairs", 0)
+    _STATE["pairs"] = before + 1
+    warm = _STATE["warm_seconds"] if before == 0 else 0.0
     t0 = time.perf_counter()
     tmp = out / BATCH_DIR / "tmp" / f"{spec.name}.{os.getpid()}.{uuid.uuid4().hex[:8]}"
     tmp.mkdir(parents=True)
@@ -306,7 +311,8 @@ def convert_pair(task: dict, notify=None) -> dict:
     report["meta"] = dict(spec.meta)
     report["batch"] = {"name": spec.name, "fingerprint": task["fingerprint"],
                        "attempt": task["attempt"], "worker": worker,
-                       "worker_warm_up_seconds": round(warm, 3)}
+                       "worker_warm_up_seconds": round(warm, 3),
+                       "worker_pairs_before": before}
     seconds = round(time.perf_counter() - t0, 3)
     outcome["seconds"] = seconds
     if error is None:
@@ -321,6 +327,8 @@ def convert_pair(task: dict, notify=None) -> dict:
         sums = "".join(f"{digest}  {rel}\n" for rel, digest in hashes.items())
         write_text_atomic(tmp / "checksums.sha256", sums)
         _replace_dir(tmp, final, out / BATCH_DIR / "trash")
+        # What an earlier failed attempt left is no longer the pair's state.
+        shutil.rmtree(out / BATCH_DIR / "failed" / spec.name, ignore_errors=True)
         outcome.update(status="done", report=json.loads(text), hashes=hashes)
         return outcome
     kind = ("timeout" if isinstance(error, PairTimeout)
@@ -461,8 +469,8 @@ def _run_local(tasks: list[dict], workers: int, threads: int, params_dict: dict,
                 if not (dead or late):
                     continue
                 task = w.task
-                code = w.process.exitcode
                 w.stop(kill=True)
+                code = w.process.exitcode
                 pool[i] = _Worker(ctx, threads, params_dict)
                 if task is None:
                     continue
@@ -476,13 +484,28 @@ def _run_local(tasks: list[dict], workers: int, threads: int, params_dict: dict,
                                "memory_budget_mb)"}
                 outcome.update(name=task["spec"]["name"], status="failed", stage=w.stage,
                                traceback="", attempt=task["attempt"], seconds=None)
-                _clean_tmp(Path(task["out"]), task["spec"]["name"])
+                _keep_what_a_dead_worker_left(Path(task["out"]), task["spec"]["name"],
+                                              w.process.pid, outcome["reason"])
                 retry = events.finish(task, outcome)
                 if retry:
                     queue.append(retry)
     finally:
         for w in pool:
             w.stop(kill=w.task is not None)
+
+
+def _keep_what_a_dead_worker_left(out: Path, name: str, pid: int, reason: str) -> None:
+    """Move a dead worker's temporary pair folder to ``_batch/failed/NAME``, log appended."""
+    tmp = out / BATCH_DIR / "tmp"
+    for folder in tmp.glob(f"{name}.{pid}.*"):
+        with contextlib.suppress(OSError), open(folder / "log.txt", "a",
+                                                encoding="utf-8") as fh:
+            fh.write(f"{time.strftime('%Y-%m-%dT%H:%M:%S')} stopped: {reason}\n")
+        failed = out / BATCH_DIR / "failed"
+        failed.mkdir(parents=True, exist_ok=True)
+        with contextlib.suppress(OSError):
+            _replace_dir(folder, failed / name, out / BATCH_DIR / "trash")
+    _clean_tmp(out, name)
 
 
 def _clean_tmp(out: Path, name: str | None = None) -> None:
@@ -510,18 +533,24 @@ def _dask_convert(task: dict) -> dict:
     return convert_pair(task)
 
 
-def _run_dask(tasks: list[dict], address: str, events) -> None:
-    """Run ``tasks`` on the Dask scheduler at ``address`` (the scheduler places them)."""
+def _connect(address: str):
+    """A Dask client of the scheduler at ``address``, or :class:`InputError` saying why not."""
     try:
-        from dask.distributed import Client, as_completed
+        from dask.distributed import Client
     except ImportError:
         raise InputError("--cluster needs dask.distributed: pip install 'dask[distributed]'") \
             from None
     try:
-        client = Client(address, timeout="20s")
-    except (OSError, TimeoutError) as exc:
+        return Client(address, timeout="10s")
+    except (OSError, TimeoutError, ValueError) as exc:
         raise InputError(f"--cluster {address}: cannot reach a Dask scheduler there ({exc}); "
                          "check the address and that the scheduler runs") from None
+
+
+def _run_dask(tasks: list[dict], client, events) -> None:
+    """Run ``tasks`` through a Dask ``client`` (the scheduler places them); closes it."""
+    from dask.distributed import as_completed
+
     try:
         futures = {}
 
@@ -751,7 +780,13 @@ def run_batch(
     per_pair = {s.name: pair_params(params, s) for s in specs}
     for calib in sorted({s.calib for s in specs if s.calib is not None}):
         load_calibration(calib)
-    out = prepare_out_dir(out_dir)
+    client = _connect(cluster) if cluster else None
+    try:
+        out = prepare_out_dir(out_dir)
+    except InputError:
+        if client is not None:
+            client.close()
+        raise
     (out / BATCH_DIR).mkdir(exist_ok=True)
     _clean_tmp(out)
     shutil.rmtree(out / BATCH_DIR / "trash", ignore_errors=True)
@@ -784,11 +819,13 @@ def run_batch(
     previous = _terminate_as_interrupt()
     try:
         if tasks:
-            if cluster:
-                _run_dask(tasks, cluster, events)
+            if client is not None:
+                _run_dask(tasks, client, events)
+                client = None
             else:
-                n, threads = default_workers(specs, params) if workers is None else \
-                    (workers, max(1, (os.cpu_count() or 1) // workers))
+                n = default_workers(specs, params)[0] if workers is None else workers
+                n = min(n, len(tasks))  # the cores of workers with nothing to do go to the rest
+                threads = max(1, (os.cpu_count() or 1) // n)
                 events.write(f"{n} local worker processes, {threads} numba threads each")
                 _run_local(tasks, n, threads, params.to_dict(), events)
     except KeyboardInterrupt:
@@ -796,6 +833,8 @@ def run_batch(
         events.write("interrupted: pairs not finished are left to the next run")
         raise
     finally:
+        if client is not None:  # no pair needed the cluster
+            client.close()
         if previous is not None:
             signal.signal(signal.SIGTERM, previous)
         if bar is not None:

@@ -154,6 +154,9 @@ def test_bad_invocations_exit_2_naming_the_file(scene, tmp_path, capsys):
          "cannot be created"),
         ([str(tmp_path / "m.csv"), "--calib", str(scene["calib"])], "p2"),
         ([str(src), "--workers", "0"], "--workers"),
+        # Nothing listens on the discard port of this machine: no scheduler to reach.
+        ([str(src), "--calib", str(scene["calib"]), "--cluster", "tcp://127.0.0.1:9"],
+         "cannot reach a Dask scheduler"),
     ]
     (tmp_path / "empty").mkdir()
     cases.append(([str(tmp_path / "empty")], "no stereo pairs found"))
@@ -222,6 +225,13 @@ def test_broken_pairs_recorded_others_complete_exit_3(broken_batch):
     assert json.loads((out / "p4" / "report.json").read_text())[
         "params"]["disparity"]["speckle_size"] == 50
     assert report["outputs"]["mesh"] == str(out / "p2" / "mesh.ply")
+    # Warm workers: two processes converted the six pairs, each warmed up once.
+    batches = [json.loads((out / n / "report.json").read_text())["batch"]
+               for n in ("p1", "p2", "p3", "p4")]
+    pids = [b["worker"]["pid"] for b in batches]
+    assert len(set(pids)) <= 2 and max(pids.count(p) for p in pids) >= 2
+    assert sum(b["worker_warm_up_seconds"] > 0 for b in batches) <= 2
+    assert max(b["worker_pairs_before"] for b in batches) >= 1
     assert "defer to licensed surveyors" in summary["run"]["caution"]
     with open(out / "summary.csv", newline="") as fh:
         table = list(csv.DictReader(fh))
@@ -346,6 +356,7 @@ def test_killed_worker_and_timeout_are_recorded_and_retried(scene, tmp_path):
     rows = {r["name"]: r for r in json.loads((out / "summary.json").read_text())["pairs"]}
     assert rows["w1"]["status"] == "done" and rows["w1"]["attempts"] == 2
     assert "SIGKILL" in (out / "batch.log").read_text()
+    assert not (out / "_batch" / "failed" / "w1").exists()  # the retry succeeded
     assert json.loads((out / "w1" / "report.json").read_text())["batch"]["worker"]["pid"] != killed
 
     # A time limit no pair can meet: recorded as a timeout, tried once more, exit 3.
