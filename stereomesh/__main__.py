@@ -1,3 +1,6 @@
 from stereomesh.cli import entry
 
-raise SystemExit(entry())
+# Guarded: the batch runner's worker processes are started with "spawn", which
+# imports the parent's main module (this one under ``python -m stereomesh``).
+if __name__ == "__main__":
+    raise SystemExit(entry())

@@ -1,6 +1,6 @@
 """The ``stereomesh`` command line: thin, over :mod:`stereomesh.pipeline`.
 
-Exit codes: 0 success, 1 internal error, 2 bad input or usage.
+Exit codes: 0 success, 1 internal error, 2 bad input or usage, 3 (batch) some pairs failed.
 """
 
 from __future__ import annotations
@@ -15,7 +15,7 @@ from pathlib import Path
 from stereomesh import __version__
 from stereomesh.errors import InputError
 
-EXIT_OK, EXIT_INTERNAL, EXIT_BAD_INPUT = 0, 1, 2
+EXIT_OK, EXIT_INTERNAL, EXIT_BAD_INPUT, EXIT_SOME_FAILED = 0, 1, 2, 3
 
 
 def _progress_bar(quiet: bool):
@@ -33,6 +33,18 @@ def _progress_bar(quiet: bool):
     return update, bar.close
 
 
+def _say_if_compiling(quiet: bool) -> bool:
+    """Tell the user why the first run after an install is slow; True when it is."""
+    from stereomesh.matching.disparity import kernels_cached
+
+    if kernels_cached():
+        return False
+    if not quiet:
+        print("stereomesh: compiling the matching kernels, once per install "
+              "(a minute or two on a 2-core machine)...", file=sys.stderr, flush=True)
+    return True
+
+
 @contextlib.contextmanager
 def _first_run(quiet: bool, stop_after: str = "repair"):
     """On the first run after an install, say why it is slow and compile in two processes.
@@ -43,13 +55,8 @@ def _first_run(quiet: bool, stop_after: str = "repair"):
     cores that roughly halves the wait. It is stopped when the command ends.
     Yields the helper process, or None when the kernels are already cached.
     """
-    from stereomesh.matching.disparity import kernels_cached
-
     helper = None
-    if not kernels_cached():
-        if not quiet:
-            print("stereomesh: compiling the matching kernels, once per install "
-                  "(a minute or two on a 2-core machine)...", file=sys.stderr, flush=True)
+    if _say_if_compiling(quiet):
         code = f"from stereomesh.pipeline import warm_up_stages; warm_up_stages({stop_after!r})"
         env = {k: v for k, v in os.environ.items() if k != "PYTHONSTARTUP"}
         env["NUMBA_NUM_THREADS"] = "1"
@@ -137,6 +144,33 @@ def _build_parser() -> argparse.ArgumentParser:
     for section in SECTIONS:
         add_cli_arguments(p.add_argument_group(f"{section} parameters"), (section,))
 
+    p = sub.add_parser("batch", help="many pairs from a folder or a CSV manifest, resumable")
+    p.add_argument("source", type=Path,
+                   help="folder of pairs (NAME_L/NAME_R, NAME-left/NAME-right, NAME.mpo) or a "
+                        ".csv manifest (name,left,right,calib,layout, parameter and meta.* "
+                        "columns)")
+    p.add_argument("--calib", type=Path, help="calibration shared by the pairs (a manifest's "
+                                              "calib column wins)")
+    p.add_argument("--config", type=Path, help="TOML file of parameters for every pair")
+    _preset_argument(p)
+    p.add_argument("--side-by-side", action="store_true",
+                   help="image files of the folder not named as a view are side-by-side scans")
+    p.add_argument("--swap", action="store_true", help="every pair's first view is the right one")
+    p.add_argument("--workers", type=int, default=None,
+                   help="local worker processes (default: from the cores and the memory a "
+                        "pair needs)")
+    p.add_argument("--cluster", metavar="ADDRESS",
+                   help="a Dask distributed scheduler, e.g. tcp://host:8786, instead of local "
+                        "workers")
+    p.add_argument("--pair-timeout", type=float, default=None, metavar="S",
+                   help="seconds a pair may take before it is stopped and recorded as failed")
+    p.add_argument("--retries", type=int, default=1, metavar="K",
+                   help="tries again a pair whose worker died, timed out or crashed, at most "
+                        "K times (default 1); bad input is not tried again")
+    common(p)
+    for section in SECTIONS:
+        add_cli_arguments(p.add_argument_group(f"{section} parameters"), (section,))
+
     p = sub.add_parser("demo", help="render the demo scene's pair and run the pipeline on it")
     common(p)
 
@@ -195,6 +229,32 @@ def _cmd_run(args) -> int:
         close()
     if not args.quiet:
         print(_summary(report, "run") + f" -> {report['outputs']['mesh']}")
+    return EXIT_OK
+
+
+def _cmd_batch(args) -> int:
+    from stereomesh.batch import run_batch
+    from stereomesh.io.manifest import find_pairs
+    from stereomesh.params import SECTIONS
+
+    params = _params(args, tuple(SECTIONS))
+    specs = find_pairs(args.source, calib=args.calib, side_by_side=args.side_by_side,
+                       swap=args.swap)
+    if not args.cluster:
+        _say_if_compiling(args.quiet)
+    result = run_batch(specs, args.out, params, workers=args.workers, cluster=args.cluster,
+                       pair_timeout=args.pair_timeout, retries=args.retries,
+                       progress_bar=not args.quiet and sys.stderr.isatty(),
+                       source=str(args.source))
+    line = (f"batch: {len(specs)} pairs, {result.done} converted, {result.skipped} finished "
+            f"earlier, {result.failed} failed -> {args.out / 'index.html'}")
+    if result.failed:
+        print(line, file=sys.stderr)
+        print(f"stereomesh batch: {result.failed} of {len(specs)} pairs failed "
+              f"(reasons in {args.out / 'summary.csv'})", file=sys.stderr)
+        return EXIT_SOME_FAILED
+    if not args.quiet:
+        print(line)
     return EXIT_OK
 
 
@@ -289,7 +349,7 @@ def main(argv: list[str] | None = None) -> int:
     args = parser.parse_args(argv)
     configure_process()
     commands = {"disparity": _cmd_disparity, "run": _cmd_run, "demo": _cmd_demo,
-                "worker": _cmd_worker, "calibrate": _cmd_calibrate}
+                "worker": _cmd_worker, "calibrate": _cmd_calibrate, "batch": _cmd_batch}
     try:
         return commands[args.command](args)
     except InputError as exc:
