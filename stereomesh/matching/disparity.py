@@ -138,7 +138,7 @@ def compute_disparity(
     >>> right = (rng.random((40, 80)) * 255).astype(np.uint8)
     >>> left = np.roll(right, 6, axis=1)
     >>> res = compute_disparity(left, right, DisparityParams(disp_range="0:16"))
-    >>> float(np.nanmedian(res.disparity))
+    >>> round(float(np.nanmedian(res.disparity)), 3)   # the alignment fit is not exact to 1e-5
     6.0
     """
     from stereomesh.matching import _kernels
