@@ -454,22 +454,48 @@ def reconstruct(
 def warm_up_stages(stop_after: str = "repair") -> None:
     """Compile (or load) the kernels of the stages around the solver, on a tiny pair.
 
-    Runs :func:`reconstruct` with the winner-takes-all solver on a 48 × 64
-    synthetic pair, so everything but the SGM and BP kernels is compiled: the
-    refinement, confidence and energy kernels and the geometry stages up to
-    ``stop_after``. The first run after an install starts it in a second
+    Runs :func:`reconstruct` with default parameters on a 48 × 64 synthetic
+    pair, the solver replaced by a fixed answer (the pair's true shift), so
+    that everything the default path needs except the SGM kernels is compiled:
+    the refinement, confidence and energy kernels and the geometry stages up
+    to ``stop_after``. The first run after an install starts it in a second
     process while the first compiles the solver.
 
     Examples
     --------
     >>> warm_up_stages("disparity")
     """
+    from stereomesh.geometry.repair import _small_components, count_boundary_loops
+    from stereomesh.matching import disparity as engine
+    from stereomesh.matching._sgm_kernels import census_unary
+    from stereomesh.matching.winners import Winners
+
+    # First the kernels the command needs right after its solver and at its
+    # very end: compiled here early, they are in the cache before it asks.
+    planes = np.zeros((3, 4, 8), np.uint16)
+    census_unary(planes, planes, np.zeros((4, 8), np.int32), 0, 48.0)
+    square = np.array([[0, 1, 2], [0, 2, 3]], np.int32)
+    corners = np.array([[0.0, 0, 1], [1, 0, 1], [1, 1, 1], [0, 1, 1]])
+    _small_components(corners, square, 0.01)
+    count_boundary_loops(square, 4)
+
+    shift = 6
     rng = np.random.default_rng(0)
     right = (rng.random((48, 64, 3)) * 255).astype(np.uint8)
-    left = np.roll(right, 6, axis=1)
+    left = np.roll(right, shift, axis=1)
     pair = StereoPair(left, right, RectifiedRig(focal_px=100.0, cx=32.0, cy=24.0,
                                                 baseline=0.1, image_size=(64, 48)))
-    params = Params().with_overrides({"method": "wta", "disp_range": "0:16",
-                                      "speckle_size": 0})
-    reconstruct(pair, params, stop_after=stop_after)
 
+    def fixed_answer(gl, gr, d_min, n_disp, params, workspace=None):
+        # The arrays a solver returns, with the dtypes and layout SGM gives them.
+        h, w = gl.shape
+        best = np.full((h, w), shift - d_min, np.int32)
+        low, high = np.zeros((h, w), np.float32), np.full((h, w), 10.0, np.float32)
+        return Winners(best, low, high, high * 0.5, high * 0.5, best.copy(), low.copy()), {}
+
+    params = Params().with_overrides({"disp_range": "0:16", "speckle_size": 0})
+    solver, engine._solve = engine._solve, fixed_answer
+    try:
+        reconstruct(pair, params, stop_after=stop_after)
+    finally:
+        engine._solve = solver

@@ -386,7 +386,8 @@ def kernels_cached() -> bool:
     here = Path(__file__).resolve().parent
     custom = os.environ.get("NUMBA_CACHE_DIR")
     folders = [Path(custom)] if custom else [here / "__pycache__"]
-    return any(any(folder.rglob("_sgm_kernels.*.nbi")) for folder in folders if folder.is_dir())
+    return any(any(folder.rglob("_sgm_kernels.sgm_solve-*.nbi")) for folder in folders
+               if folder.is_dir())
 
 
 def _zero_energy() -> dict:
