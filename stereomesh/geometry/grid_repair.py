@@ -428,7 +428,11 @@ def repair_grid_mesh(
     >>> fig["holes_filled"], fig["filled_vertices"], fig["boundary_loops_after"]
     (1, 1, 1)
     """
-    from stereomesh.geometry.repair import _small_components, count_boundary_loops
+    from stereomesh.geometry.repair import (
+        _small_components,
+        count_boundary_loops,
+        figures_before,
+    )
     from stereomesh.geometry.surface import depth_grid_mesh
 
     if mesh.pixels is None:
@@ -441,17 +445,7 @@ def repair_grid_mesh(
     if cols.min(initial=0) < 0 or rows.min(initial=0) < 0 or cols.max(initial=0) >= w \
             or rows.max(initial=0) >= h:
         raise ValueError(f"the mesh's pixels fall outside the {w}x{h} image")
-    nv0 = len(mesh.vertices)
-    figures = {
-        "method": "pixel grid",
-        "faces_before": int(len(mesh.faces)),
-        "vertices_before": int(nv0),
-        "boundary_loops_before": count_boundary_loops(mesh.faces, nv0),
-        "holes_filled": 0,
-        "filled_vertices": 0,
-        "components_removed": 0,
-        "nonmanifold_fixed": 0,
-    }
+    figures = {"method": "pixel grid", **figures_before(mesh)}
     disparity, confidence, sigma_d, filled = grid_maps(mesh, rig, (h, w))
 
     grid = disparity[::step, ::step]

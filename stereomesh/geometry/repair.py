@@ -39,17 +39,7 @@ def _edge_use(faces: np.ndarray, n_vertices: int):
 
 
 def _edge_use_reference(faces: np.ndarray, n_vertices: int):
-    """Slow reference of :func:`_edge_use`, by sorting every edge key (for the tests).
-
-    Returns
-    -------
-    boundary : (B, 2) int64
-        Boundary edges.
-    owner : (B,) int64
-        The face using each boundary edge.
-    n_nonmanifold : int
-        Edges shared by three or more faces.
-    """
+    """Slow reference of :func:`_edge_use` (same returns), by sorting every edge key."""
     faces = np.asarray(faces, np.int64)
     if len(faces) == 0:
         return np.zeros((0, 2), np.int64), np.zeros(0, np.int64), 0
@@ -305,6 +295,25 @@ def _input_index(quality: np.ndarray, verts: np.ndarray, original: np.ndarray) -
     return idx
 
 
+def figures_before(mesh: TriMesh) -> dict:
+    """The repair figures of ``mesh`` before any repair (counts of what is done at 0).
+
+    Both repair paths (:func:`repair_mesh` and
+    :func:`~stereomesh.geometry.grid_repair.repair_grid_mesh`) start from these,
+    so their reports carry the same keys.
+    """
+    nv = len(mesh.vertices)
+    return {
+        "faces_before": int(len(mesh.faces)),
+        "vertices_before": int(nv),
+        "boundary_loops_before": count_boundary_loops(mesh.faces, nv),
+        "holes_filled": 0,
+        "filled_vertices": 0,
+        "components_removed": 0,
+        "nonmanifold_fixed": 0,
+    }
+
+
 def repair_mesh(
     mesh: TriMesh,
     *,
@@ -382,15 +391,7 @@ def repair_mesh(
         raise ValueError(f"target_faces must be >= 0 (0 keeps every face), got {target_faces}")
 
     nv0 = len(mesh.vertices)
-    figures = {
-        "faces_before": int(len(mesh.faces)),
-        "vertices_before": int(nv0),
-        "boundary_loops_before": count_boundary_loops(mesh.faces, nv0),
-        "holes_filled": 0,
-        "filled_vertices": 0,
-        "components_removed": 0,
-        "nonmanifold_fixed": 0,
-    }
+    figures = figures_before(mesh)
     if len(mesh.faces) == 0:
         empty = TriMesh(
             np.zeros((0, 3)),
