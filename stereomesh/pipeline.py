@@ -270,16 +270,12 @@ def _maps_from_cloud(cloud, rig: RectifiedRig):
         w, h = int(cols.max()) + 1, int(rows.max()) + 1
     if cols.min() < 0 or rows.min() < 0 or cols.max() >= w or rows.max() >= h:
         raise InputError(f"the cloud's pixel positions fall outside the {w}x{h} image of its rig")
-    fb = rig.focal_px * rig.baseline
-    z = cloud.points[:, 2]
-    disparity = np.full((h, w), np.nan, np.float32)
-    disparity[rows, cols] = fb / z - rig.doffs
+    from stereomesh.geometry.grid_repair import pixel_maps
+
+    disparity, confidence, sigma_d = pixel_maps(cloud.pixels, cloud.points, cloud.confidence,
+                                                cloud.sigma_z, rig, (h, w))
     image = np.zeros((h, w, 3), np.uint8)
     image[rows, cols] = cloud.colors
-    confidence = np.zeros((h, w), np.float32)
-    confidence[rows, cols] = cloud.confidence
-    sigma_d = np.zeros((h, w), np.float32)
-    sigma_d[rows, cols] = cloud.sigma_z * fb / (z * z)
     return disparity, image, confidence, sigma_d
 
 

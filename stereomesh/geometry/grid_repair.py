@@ -26,7 +26,7 @@ import numpy as np
 from stereomesh.geometry.data import TriMesh
 
 __all__ = ["coarser_grid_mesh", "fill_small_holes", "find_small_holes", "grid_maps",
-           "repair_grid_mesh"]
+           "pixel_maps", "repair_grid_mesh"]
 
 # The four edge neighbours (row, col).
 _EDGE_NEIGHBOURS = ((-1, 0), (1, 0), (0, -1), (0, 1))
@@ -318,6 +318,29 @@ def _keep_faces(mesh: TriMesh, keep: np.ndarray) -> TriMesh:
     )
 
 
+def pixel_maps(pixels, points, confidence, sigma_z, rig, shape: tuple[int, int]):
+    """Disparity, confidence and sigma_d maps of points that stand on image pixels.
+
+    The inverse of triangulation for clouds and grid meshes: ``d = f·B/Z − doffs``
+    and ``σ_d = σ_Z·f·B/Z²`` at each point's ``(col, row)``.
+
+    Returns
+    -------
+    disparity, confidence, sigma_d : (H, W) float32 arrays
+        NaN, 0 and 0 where no point stands.
+    """
+    cols, rows = pixels[:, 0], pixels[:, 1]
+    fb = float(rig.focal_px) * float(rig.baseline)
+    z = points[:, 2]
+    disparity = np.full(shape, np.nan, np.float32)
+    disparity[rows, cols] = fb / z - rig.doffs
+    conf = np.zeros(shape, np.float32)
+    conf[rows, cols] = confidence
+    sigma_d = np.zeros(shape, np.float32)
+    sigma_d[rows, cols] = sigma_z * fb / (z * z)
+    return disparity, conf, sigma_d
+
+
 def grid_maps(mesh: TriMesh, rig, shape: tuple[int, int]):
     """The disparity, confidence, sigma_d and filled maps a grid mesh was built from.
 
@@ -332,21 +355,13 @@ def grid_maps(mesh: TriMesh, rig, shape: tuple[int, int]):
     Returns
     -------
     disparity, confidence, sigma_d : (H, W) float32 arrays
-        NaN, 0 and 0 where no vertex stands.
+        NaN, 0 and 0 where no vertex stands (see :func:`pixel_maps`).
     filled : (H, W) bool array
     """
-    cols, rows = mesh.pixels[:, 0], mesh.pixels[:, 1]
-    fb = float(rig.focal_px) * float(rig.baseline)
-    z = mesh.vertices[:, 2]
-    disparity = np.full(shape, np.nan, np.float32)
-    disparity[rows, cols] = fb / z - rig.doffs
-    confidence = np.zeros(shape, np.float32)
-    confidence[rows, cols] = mesh.confidence
-    sigma_d = np.zeros(shape, np.float32)
-    sigma_d[rows, cols] = mesh.sigma_z * fb / (z * z)
+    maps = pixel_maps(mesh.pixels, mesh.vertices, mesh.confidence, mesh.sigma_z, rig, shape)
     filled = np.zeros(shape, bool)
-    filled[rows, cols] = mesh.filled.astype(bool)
-    return disparity, confidence, sigma_d, filled
+    filled[mesh.pixels[:, 1], mesh.pixels[:, 0]] = mesh.filled.astype(bool)
+    return (*maps, filled)
 
 
 def coarser_grid_mesh(mesh: TriMesh, rig, image: np.ndarray, step: int,
