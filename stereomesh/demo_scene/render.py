@@ -142,6 +142,23 @@ def _texel_for(focal: float) -> float:
     return float(np.clip(1.5 * Z_WALL / focal, 0.0012, 0.0025))
 
 
+def _scene_record(left, right, depth, occluded, calib: dict, mesh_step: int | None) -> dict:
+    """The rendered views and their ground truth (disparity, mesh) as one record."""
+    disparity = (np.float32(calib["focal_px"] * BASELINE) / depth).astype(np.float32)
+    step = mesh_step or _default_mesh_step(calib["image_size"][0])
+    vertices, faces = _grid_mesh(depth, calib, step)
+    return {
+        "left": left,
+        "right": right,
+        "gt_disparity": disparity,
+        "gt_occlusion": occluded,
+        "gt_depth": depth,
+        "calib": calib,
+        "gt_mesh_vertices": vertices,
+        "gt_mesh_faces": faces,
+    }
+
+
 def render_demo_scene(width: int = BASE_WIDTH, mesh_step: int | None = None,
                       view: str = "frontal") -> dict:
     """Render the demo stereo pair and its ground truth.
@@ -189,19 +206,7 @@ def render_demo_scene(width: int = BASE_WIDTH, mesh_step: int | None = None,
     left = _render_view(scene, calib, 0.0, 1.0, 0.0, _SEED_LEFT)
     right = _render_view(scene, calib, BASELINE, _RIGHT_GAIN, _RIGHT_OFFSET, _SEED_RIGHT)
     depth, occluded = _ground_truth(scene, calib)
-    disparity = (np.float32(calib["focal_px"] * BASELINE) / depth).astype(np.float32)
-    step = mesh_step or _default_mesh_step(calib["image_size"][0])
-    vertices, faces = _grid_mesh(depth, calib, step)
-    return {
-        "left": left,
-        "right": right,
-        "gt_disparity": disparity,
-        "gt_occlusion": occluded,
-        "gt_depth": depth,
-        "calib": calib,
-        "gt_mesh_vertices": vertices,
-        "gt_mesh_faces": faces,
-    }
+    return _scene_record(left, right, depth, occluded, calib, mesh_step)
 
 
 VIEWS = ("frontal", "oblique")
@@ -331,16 +336,4 @@ def _render_oblique(calib: dict, mesh_step: int | None) -> dict:
     right = _render_posed(scene, calib, rot, centre_right, _RIGHT_GAIN, _RIGHT_OFFSET,
                           _SEED_RIGHT)
     depth, occluded = _oblique_ground_truth(scene, calib, rot, centre_left, centre_right)
-    disparity = (np.float32(calib["focal_px"] * BASELINE) / depth).astype(np.float32)
-    step = mesh_step or _default_mesh_step(calib["image_size"][0])
-    vertices, faces = _grid_mesh(depth, calib, step)
-    return {
-        "left": left,
-        "right": right,
-        "gt_disparity": disparity,
-        "gt_occlusion": occluded,
-        "gt_depth": depth,
-        "calib": calib,
-        "gt_mesh_vertices": vertices,
-        "gt_mesh_faces": faces,
-    }
+    return _scene_record(left, right, depth, occluded, calib, mesh_step)
