@@ -58,8 +58,7 @@ def _first_run(quiet: bool, stop_after: str = "repair"):
     helper = None
     if _say_if_compiling(quiet):
         code = f"from stereomesh.pipeline import warm_up_stages; warm_up_stages({stop_after!r})"
-        env = {k: v for k, v in os.environ.items() if k != "PYTHONSTARTUP"}
-        env["NUMBA_NUM_THREADS"] = "1"
+        env = dict(os.environ, NUMBA_NUM_THREADS="1")
         try:
             helper = subprocess.Popen([sys.executable, "-c", code], env=env,
                                       stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL,
