@@ -287,6 +287,48 @@ def test_depth_grid_mesh_invalid_pixels_and_step():
         depth_grid_mesh(big, RIG, _image(9, 9), grid_step=0)
 
 
+def _face_set(faces):
+    return sorted(map(tuple, np.asarray(faces).tolist()))
+
+
+@pytest.mark.parametrize("shape", [(1, 1), (1, 6), (2, 2), (7, 9), (41, 33)])
+def test_grid_mesh_kernels_match_the_array_version(shape):
+    # Slow reference: the NumPy version kept in surface.py; the kernels must give
+    # the same vertices and faces and the same float32 normal sums to the bit.
+    from stereomesh.geometry._grid_kernels import grid_faces, grid_triangles, grid_vertices
+    from stereomesh.geometry.surface import _grid_topology_reference
+
+    h, w = shape
+    rng = np.random.default_rng(h * 100 + w)
+    z = (2 + 0.2 * rng.random(shape)).astype(np.float32)
+    z[rng.random(shape) < 0.1] *= 1.5  # depth jumps
+    z[rng.random(shape) < 0.2] = np.nan
+    valid = np.isfinite(z)
+    cols = ((np.arange(w) - w / 2) / 50).astype(np.float32)
+    rows = ((np.arange(h) - h / 2) / 50).astype(np.float32)
+    limit = np.float32(1.03)
+    code = grid_triangles(z, valid, cols, rows, limit)
+    vid, normals = grid_vertices(code, z, cols, rows)
+    faces = grid_faces(code, vid)
+    used, faces_ref, normals_ref = _grid_topology_reference(z, valid, cols, rows, limit)
+    np.testing.assert_array_equal(vid >= 0, used)
+    assert _face_set(faces) == _face_set(faces_ref)
+    np.testing.assert_array_equal(normals, normals_ref)
+
+
+def test_kept_faces_matches_the_array_version():
+    from stereomesh.geometry._mesh_kernels import kept_faces
+    from stereomesh.geometry.grid_repair import _keep_faces_reference
+
+    rng = np.random.default_rng(3)
+    faces = rng.integers(0, 50, (200, 3)).astype(np.int32)
+    keep = rng.random(200) < 0.3
+    got, used = kept_faces(faces, keep, 60)
+    want, used_ref = _keep_faces_reference(faces, keep, 60)
+    np.testing.assert_array_equal(used, used_ref)
+    np.testing.assert_array_equal(got, want)
+
+
 # ---------------------------------------------------------------- Poisson
 
 

@@ -119,3 +119,166 @@ def gradient_normals(points, pixels, index, radius):
         out[i, 1] = ny / length
         out[i, 2] = nz / length
     return out
+
+
+# --- the grid mesh ---------------------------------------------------------------
+# A block is the 2x2 pixels (r, c), (r, c+1), (r+1, c), (r+1, c+1): corners a, b,
+# c, e. Its triangles, by bit of the block code: 0 = a c e, 1 = a e b, 2 = a c b,
+# 3 = b c e. Corner offsets (row, col) of each triangle, in winding order. In
+# (col, row) pixel coordinates every one has negative signed area; with y down
+# and z forward that makes its 3-D normal face the camera, and projection keeps
+# this for any surface in front of the camera.
+_TRIANGLE_CORNERS = np.array(
+    [[[0, 0], [1, 0], [1, 1]],
+     [[0, 0], [1, 1], [0, 1]],
+     [[0, 0], [1, 0], [0, 1]],
+     [[0, 1], [1, 0], [1, 1]]], np.int64)
+
+
+@njit(cache=True)
+def _corner_xyz(z, cols, rows, r, c):
+    zz = z[r, c]
+    return zz * cols[c], zz * rows[r], zz
+
+
+@njit(cache=True)
+def _triangle_normal(z, cols, rows, r, c, t):
+    """Un-normalised normal (twice the area) of triangle ``t`` of block ``(r, c)``, float32."""
+    k = _TRIANGLE_CORNERS
+    x0, y0, z0 = _corner_xyz(z, cols, rows, r + k[t, 0, 0], c + k[t, 0, 1])
+    x1, y1, z1 = _corner_xyz(z, cols, rows, r + k[t, 1, 0], c + k[t, 1, 1])
+    x2, y2, z2 = _corner_xyz(z, cols, rows, r + k[t, 2, 0], c + k[t, 2, 1])
+    ax, ay, az = x1 - x0, y1 - y0, z1 - z0
+    bx, by, bz = x2 - x0, y2 - y0, z2 - z0
+    return ay * bz - az * by, az * bx - ax * bz, ax * by - ay * bx
+
+
+@njit(cache=True, parallel=True)
+def grid_triangles(z, valid, cols, rows, limit):
+    """Triangles kept in each 2x2 block of the grid, as a bit code per block.
+
+    ``z`` (H, W) float32 depth (any value where not ``valid``), ``cols`` (W,)
+    and ``rows`` (H,) float32 the ray slopes ``(u - cx)/f`` and ``(v - cy)/f``;
+    a triangle is kept when ``max(Z) <= min(Z) * limit`` over its corners.
+    Four valid corners are split along the shorter 3-D diagonal (``a e`` on a
+    tie), three give their one triangle. Returns ``(H-1, W-1)`` uint8.
+    """
+    h, w = z.shape
+    code = np.zeros((max(h - 1, 0), max(w - 1, 0)), np.uint8)
+    for r in prange(h - 1):
+        for c in range(w - 1):
+            va, vb = valid[r, c], valid[r, c + 1]
+            vc, ve = valid[r + 1, c], valid[r + 1, c + 1]
+            n = np.int64(va) + np.int64(vb) + np.int64(vc) + np.int64(ve)
+            if n < 3:
+                continue
+            if n == 4:
+                xa, ya, za = _corner_xyz(z, cols, rows, r, c)
+                xb, yb, zb = _corner_xyz(z, cols, rows, r, c + 1)
+                xc, yc, zc = _corner_xyz(z, cols, rows, r + 1, c)
+                xe, ye, ze = _corner_xyz(z, cols, rows, r + 1, c + 1)
+                dx, dy, dz = xe - xa, ye - ya, ze - za
+                ae = dx * dx
+                ae += dy * dy
+                ae += dz * dz
+                dx, dy, dz = xc - xb, yc - yb, zc - zb
+                bc = dx * dx
+                bc += dy * dy
+                bc += dz * dz
+                candidates = 0b0011 if ae <= bc else 0b1100
+            elif not vb:
+                candidates = 0b0001
+            elif not vc:
+                candidates = 0b0010
+            elif not ve:
+                candidates = 0b0100
+            else:
+                candidates = 0b1000
+            kept = 0
+            for t in range(4):
+                if not (candidates >> t) & 1:
+                    continue
+                z0 = z[r + _TRIANGLE_CORNERS[t, 0, 0], c + _TRIANGLE_CORNERS[t, 0, 1]]
+                z1 = z[r + _TRIANGLE_CORNERS[t, 1, 0], c + _TRIANGLE_CORNERS[t, 1, 1]]
+                z2 = z[r + _TRIANGLE_CORNERS[t, 2, 0], c + _TRIANGLE_CORNERS[t, 2, 1]]
+                if max(max(z0, z1), z2) <= min(min(z0, z1), z2) * limit:
+                    kept |= 1 << t
+            code[r, c] = kept
+    return code
+
+
+@njit(cache=True, parallel=True)
+def grid_vertices(code, z, cols, rows):
+    """Vertex ids (-1 where no kept triangle uses the pixel) and summed face normals.
+
+    The ids number used pixels in row-major order. Each vertex's normal is the
+    float32 sum of its triangles' un-normalised normals, added triangle type by
+    type and corner by corner, the order of the array version it is checked
+    against, so the two agree to the last bit.
+    """
+    h, w = z.shape
+    used = np.zeros((h, w), np.bool_)
+    # A corner of block (r - dr, c - dc) at offset (dr, dc) is pixel (r, c).
+    for r in prange(h):
+        for c in range(w):
+            hit = False
+            for t in range(4):
+                for k in range(3):
+                    br = r - _TRIANGLE_CORNERS[t, k, 0]
+                    bc = c - _TRIANGLE_CORNERS[t, k, 1]
+                    if br >= 0 and bc >= 0 and br < h - 1 and bc < w - 1 \
+                            and (code[br, bc] >> t) & 1:
+                        hit = True
+            used[r, c] = hit
+    row_start = np.zeros(h + 1, np.int64)
+    for r in range(h):
+        row_start[r + 1] = row_start[r] + used[r].sum()
+    vid = np.full((h, w), -1, np.int32)
+    normals = np.zeros((row_start[h], 3), np.float32)
+    for r in prange(h):
+        i = row_start[r]
+        for c in range(w):
+            if not used[r, c]:
+                continue
+            vid[r, c] = i
+            nx, ny, nz = np.float32(0), np.float32(0), np.float32(0)
+            for t in range(4):
+                for k in range(3):
+                    br = r - _TRIANGLE_CORNERS[t, k, 0]
+                    bc = c - _TRIANGLE_CORNERS[t, k, 1]
+                    if br >= 0 and bc >= 0 and br < h - 1 and bc < w - 1 \
+                            and (code[br, bc] >> t) & 1:
+                        ax, ay, az = _triangle_normal(z, cols, rows, br, bc, t)
+                        nx += ax
+                        ny += ay
+                        nz += az
+            normals[i, 0], normals[i, 1], normals[i, 2] = nx, ny, nz
+            i += 1
+    return vid, normals
+
+
+@njit(cache=True, parallel=True)
+def grid_faces(code, vid):
+    """Faces ``(F, 3)`` int32 of the block codes: blocks in row-major order, types 0-3 in each."""
+    hb, wb = code.shape
+    row_start = np.zeros(hb + 1, np.int64)
+    for r in range(hb):
+        count = 0
+        for c in range(wb):
+            bits = code[r, c]
+            while bits:
+                count += bits & 1
+                bits >>= 1
+        row_start[r + 1] = row_start[r] + count
+    faces = np.empty((row_start[hb], 3), np.int32)
+    for r in prange(hb):
+        i = row_start[r]
+        for c in range(wb):
+            bits = code[r, c]
+            for t in range(4):
+                if (bits >> t) & 1:
+                    for k in range(3):
+                        faces[i, k] = vid[r + _TRIANGLE_CORNERS[t, k, 0],
+                                          c + _TRIANGLE_CORNERS[t, k, 1]]
+                    i += 1
+    return faces

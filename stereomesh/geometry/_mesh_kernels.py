@@ -177,3 +177,32 @@ def component_sizes(faces, vertices, labels, n):
                 s += (hi[c, j] - lo[c, j]) ** 2
             diag[c] = np.sqrt(s)
     return n_faces, diag
+
+
+@nb.njit(cache=True)
+def kept_faces(faces, keep, n_vertices):
+    """The faces ``keep`` selects, renumbered onto the vertices they use.
+
+    Returns ``(faces (K, 3) int32, used (V,) bool)``: vertex ``i`` of the
+    result is the ``i``-th used vertex of the input, in order.
+    """
+    used = np.zeros(n_vertices, np.bool_)
+    n_kept = 0
+    for f in range(faces.shape[0]):
+        if keep[f]:
+            n_kept += 1
+            for k in range(3):
+                used[faces[f, k]] = True
+    new_id = np.empty(n_vertices, np.int32)
+    n = 0
+    for v in range(n_vertices):
+        new_id[v] = n
+        n += used[v]
+    out = np.empty((n_kept, 3), np.int32)
+    i = 0
+    for f in range(faces.shape[0]):
+        if keep[f]:
+            for k in range(3):
+                out[i, k] = new_id[faces[f, k]]
+            i += 1
+    return out, used

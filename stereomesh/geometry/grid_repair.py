@@ -297,17 +297,17 @@ def fill_small_holes_reference(
 
 def _keep_faces(mesh: TriMesh, keep: np.ndarray) -> TriMesh:
     """The mesh with only the faces ``keep`` selects and the vertices they use."""
-    faces = mesh.faces[keep]
-    used = np.zeros(len(mesh.vertices), bool)
-    used[faces.ravel()] = True
-    new_id = np.cumsum(used) - 1
+    from stereomesh.geometry._mesh_kernels import kept_faces
+
+    faces, used = kept_faces(np.ascontiguousarray(mesh.faces), np.ascontiguousarray(keep, bool),
+                             len(mesh.vertices))
 
     def pick(a):
         return None if a is None else a[used]
 
     return TriMesh(
         vertices=mesh.vertices[used],
-        faces=new_id[faces].astype(np.int32),
+        faces=faces,
         colors=mesh.colors[used],
         confidence=mesh.confidence[used],
         sigma_z=mesh.sigma_z[used],
@@ -316,6 +316,15 @@ def _keep_faces(mesh: TriMesh, keep: np.ndarray) -> TriMesh:
         uv=pick(mesh.uv),
         pixels=pick(mesh.pixels),
     )
+
+
+def _keep_faces_reference(faces: np.ndarray, keep: np.ndarray, n_vertices: int):
+    """Array version of :func:`~stereomesh.geometry._mesh_kernels.kept_faces` (for the tests)."""
+    faces = np.asarray(faces)[keep]
+    used = np.zeros(n_vertices, bool)
+    used[faces.ravel()] = True
+    new_id = np.cumsum(used) - 1
+    return new_id[faces].astype(np.int32), used
 
 
 def pixel_maps(pixels, points, confidence, sigma_z, rig, shape: tuple[int, int]):

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from stereomesh.geometry._grid_kernels import grid_faces, grid_triangles, grid_vertices
 from stereomesh.geometry.data import PointCloud, TriMesh
 from stereomesh.geometry.triangulate import _check_maps, valid_disparity_mask
 from stereomesh.params import CloudParams
@@ -151,105 +152,15 @@ def depth_grid_mesh(
         z = np.where(valid, (f * b) / (d.astype(np.float64) + rig.doffs), np.nan).astype(np.float32)
     cols = (np.arange(gw, dtype=np.float32) * step - np.float32(rig.cx)) / np.float32(f)
     rows = (np.arange(gh, dtype=np.float32) * step - np.float32(rig.cy)) / np.float32(f)
-    x = z * cols[None, :]
-    y = z * rows[:, None]
-
-    # Block corners: a top-left, b top-right, c bottom-left, e bottom-right.
-    def corner(arr, dr, dc):
-        return arr[dr : gh - 1 + dr, dc : gw - 1 + dc]
-
-    # Fresh 12-megapixel temporaries cost more in page faults than in arithmetic,
-    # so the block-grid work below runs in a few reused buffers.
-    bshape = (gh - 1, gw - 1)
-    e1 = [np.empty(bshape, np.float32) for _ in range(3)]
-    e2 = [np.empty(bshape, np.float32) for _ in range(3)]
-    tmp = np.empty(bshape, np.float32)
-    tmp2 = np.empty(bshape, np.float32)
-
-    xyz = (x, y, z)
-    del x, y
-
-    def diff_into(outs, grids, o_to, o_from):
-        for out, g in zip(outs, grids, strict=True):
-            np.subtract(corner(g, *o_to), corner(g, *o_from), out=out)
-
-    def norm2_into(out, vec, scratch):
-        np.multiply(vec[0], vec[0], out=out)
-        for comp in vec[1:]:
-            out += np.multiply(comp, comp, out=scratch)
-
-    va, vb, vc, ve = (corner(valid, *o) for o in ((0, 0), (0, 1), (1, 0), (1, 1)))
-    all4 = va & vb & vc & ve
-    with np.errstate(invalid="ignore"):
-        diff_into(e1, xyz, (1, 1), (0, 0))
-        diff_into(e2, xyz, (1, 0), (0, 1))
-        norm2_into(tmp, e1, tmp2)
-        norm2_into(e1[0], e2, tmp2)
-        use_ae = all4 & (tmp <= e1[0])
-    use_bc = all4 & ~use_ae
-
-    # In (col, row) pixel coordinates every triangle below has negative signed
-    # area; with y down and z forward that makes its 3-D normal face the camera,
-    # and projection preserves this for any surface in front of the camera.
-    tri_defs = (
-        (((0, 0), (1, 0), (1, 1)), (va & vc & ve) & (~vb | use_ae)),  # a c e
-        (((0, 0), (1, 1), (0, 1)), (va & ve & vb) & (~vc | use_ae)),  # a e b
-        (((0, 0), (1, 0), (0, 1)), (va & vc & vb) & (~ve | use_bc)),  # a c b
-        (((0, 1), (1, 0), (1, 1)), (vb & vc & ve) & (~va | use_bc)),  # b c e
-    )
-    del va, vb, vc, ve, all4, use_ae, use_bc
     limit = np.float32(1.0 + max_depth_jump)
-    kept = []
-    used = np.zeros((gh, gw), bool)
-    # Area-weighted normals summed on the pixel grid by shifted slices: a scatter
-    # over 20 million faces would take several times longer.
-    acc = np.zeros((3, gh, gw), np.float32)
-    for offsets, mask in tri_defs:
-        z0, z1, z2 = (corner(xyz[2], *o) for o in offsets)
-        zmax, zmin = e1[0], e2[0]
-        with np.errstate(invalid="ignore"):
-            np.fmax(np.fmax(z0, z1, out=zmax), z2, out=zmax)
-            np.fmin(np.fmin(z0, z1, out=zmin), z2, out=zmin)
-            zmin *= limit
-            mask &= zmax <= zmin
-        kept.append((offsets, mask))
-        for o in offsets:
-            corner(used, *o)[...] |= mask
-        rejected = ~mask
-        with np.errstate(invalid="ignore"):
-            diff_into(e1, xyz, offsets[1], offsets[0])
-            diff_into(e2, xyz, offsets[2], offsets[0])
-            for k in range(3):
-                i, j = (k + 1) % 3, (k + 2) % 3
-                comp = np.multiply(e1[i], e2[j], out=tmp)
-                comp -= np.multiply(e1[j], e2[i], out=tmp2)
-                # Rejected triangles may touch NaN pixels: zero them before summing.
-                np.copyto(comp, 0, where=rejected)
-                for o in offsets:
-                    corner(acc[k], *o)[...] += comp
-        del rejected
-    del xyz, e1, e2, tmp, tmp2
-
-    # Vertex ids only for pixels some triangle uses, numbered in row-major order.
-    n_vert = int(used.sum())
-    if n_vert >= 2**31 - 1:
+    if int(np.count_nonzero(valid)) >= 2**31 - 1:
         raise ValueError("too many vertices for int32 faces; use a larger grid_step")
-    vid = np.full((gh, gw), -1, np.int32)
-    vid[used] = np.arange(n_vert, dtype=np.int32)
-    n_faces = sum(int(m.sum()) for _, m in kept)
-    faces = np.empty((n_faces, 3), np.int32)
-    start = 0
-    for offsets, mask in kept:
-        k = int(mask.sum())
-        for j, o in enumerate(offsets):
-            faces[start : start + k, j] = corner(vid, *o)[mask]
-        start += k
-    del kept, vid
-
-    normals = np.empty((n_vert, 3), np.float32)
-    for k in range(3):
-        normals[:, k] = acc[k][used]
-    del acc
+    code = grid_triangles(z, valid, cols, rows, limit)
+    vid, normals = grid_vertices(code, z, cols, rows)
+    n_vert = len(normals)
+    faces = grid_faces(code, vid)
+    used = vid >= 0
+    del code, vid
 
     # Boolean-mask gathers on the strided grid are much faster than (row, col)
     # fancy indexing at this size.
@@ -299,6 +210,115 @@ def depth_grid_mesh(
         uv=uv,
         pixels=pixels,
     )
+
+
+
+def _grid_topology_reference(z, valid, cols, rows, limit):
+    """Array version of the grid kernels (for the tests): used pixels, faces, normal sums.
+
+    Returns ``used (H, W) bool``, ``faces (F, 3) int32`` grouped by triangle
+    type, and ``normals (V, 3) float32``, the un-normalised sums the kernels
+    make, for the same inputs as :func:`~stereomesh.geometry._grid_kernels.grid_triangles`.
+    """
+    gh, gw = z.shape
+    x = z * cols[None, :]
+    y = z * rows[:, None]
+
+    # Block corners: a top-left, b top-right, c bottom-left, e bottom-right.
+    def corner(arr, dr, dc):
+        return arr[dr : gh - 1 + dr, dc : gw - 1 + dc]
+
+    # Fresh 12-megapixel temporaries cost more in page faults than in arithmetic,
+    # so the block-grid work below runs in a few reused buffers.
+    bshape = (gh - 1, gw - 1)
+    e1 = [np.empty(bshape, np.float32) for _ in range(3)]
+    e2 = [np.empty(bshape, np.float32) for _ in range(3)]
+    tmp = np.empty(bshape, np.float32)
+    tmp2 = np.empty(bshape, np.float32)
+
+    xyz = (x, y, z)
+    del x, y
+
+    def diff_into(outs, grids, o_to, o_from):
+        for out, g in zip(outs, grids, strict=True):
+            np.subtract(corner(g, *o_to), corner(g, *o_from), out=out)
+
+    def norm2_into(out, vec, scratch):
+        np.multiply(vec[0], vec[0], out=out)
+        for comp in vec[1:]:
+            out += np.multiply(comp, comp, out=scratch)
+
+    va, vb, vc, ve = (corner(valid, *o) for o in ((0, 0), (0, 1), (1, 0), (1, 1)))
+    all4 = va & vb & vc & ve
+    with np.errstate(invalid="ignore"):
+        diff_into(e1, xyz, (1, 1), (0, 0))
+        diff_into(e2, xyz, (1, 0), (0, 1))
+        norm2_into(tmp, e1, tmp2)
+        norm2_into(e1[0], e2, tmp2)
+        use_ae = all4 & (tmp <= e1[0])
+    use_bc = all4 & ~use_ae
+
+    # In (col, row) pixel coordinates every triangle below has negative signed
+    # area; with y down and z forward that makes its 3-D normal face the camera,
+    # and projection preserves this for any surface in front of the camera.
+    tri_defs = (
+        (((0, 0), (1, 0), (1, 1)), (va & vc & ve) & (~vb | use_ae)),  # a c e
+        (((0, 0), (1, 1), (0, 1)), (va & ve & vb) & (~vc | use_ae)),  # a e b
+        (((0, 0), (1, 0), (0, 1)), (va & vc & vb) & (~ve | use_bc)),  # a c b
+        (((0, 1), (1, 0), (1, 1)), (vb & vc & ve) & (~va | use_bc)),  # b c e
+    )
+    del va, vb, vc, ve, all4, use_ae, use_bc
+    kept = []
+    used = np.zeros((gh, gw), bool)
+    # Area-weighted normals summed on the pixel grid by shifted slices: a scatter
+    # over 20 million faces would take several times longer.
+    acc = np.zeros((3, gh, gw), np.float32)
+    for offsets, mask in tri_defs:
+        z0, z1, z2 = (corner(xyz[2], *o) for o in offsets)
+        zmax, zmin = e1[0], e2[0]
+        with np.errstate(invalid="ignore"):
+            np.fmax(np.fmax(z0, z1, out=zmax), z2, out=zmax)
+            np.fmin(np.fmin(z0, z1, out=zmin), z2, out=zmin)
+            zmin *= limit
+            mask &= zmax <= zmin
+        kept.append((offsets, mask))
+        for o in offsets:
+            corner(used, *o)[...] |= mask
+        rejected = ~mask
+        with np.errstate(invalid="ignore"):
+            diff_into(e1, xyz, offsets[1], offsets[0])
+            diff_into(e2, xyz, offsets[2], offsets[0])
+            for k in range(3):
+                i, j = (k + 1) % 3, (k + 2) % 3
+                comp = np.multiply(e1[i], e2[j], out=tmp)
+                comp -= np.multiply(e1[j], e2[i], out=tmp2)
+                # Rejected triangles may touch NaN pixels: zero them before summing.
+                np.copyto(comp, 0, where=rejected)
+                for o in offsets:
+                    corner(acc[k], *o)[...] += comp
+        del rejected
+    del xyz, e1, e2, tmp, tmp2
+
+    # Vertex ids only for pixels some triangle uses, numbered in row-major order.
+    n_vert = int(used.sum())
+    vid = np.full((gh, gw), -1, np.int32)
+    vid[used] = np.arange(n_vert, dtype=np.int32)
+    n_faces = sum(int(m.sum()) for _, m in kept)
+    faces = np.empty((n_faces, 3), np.int32)
+    start = 0
+    for offsets, mask in kept:
+        k = int(mask.sum())
+        for j, o in enumerate(offsets):
+            faces[start : start + k, j] = corner(vid, *o)[mask]
+        start += k
+    del kept, vid
+
+    normals = np.empty((n_vert, 3), np.float32)
+    for k in range(3):
+        normals[:, k] = acc[k][used]
+    del acc
+
+    return used, faces, normals
 
 
 def _median_spacing(points: np.ndarray, sample: int = 100_000, seed: int = 0) -> float:
