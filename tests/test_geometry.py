@@ -520,6 +520,28 @@ def test_grid_outlier_removal_matches_its_reference_and_open3d():
                                   grid_outlier_keep_reference(half, 8, 2.0))
 
 
+@pytest.mark.parametrize("k", [1, 3, 20, 24, 30])
+def test_mean_neighbour_distance_matches_brute_force(k):
+    # Brute force: every window candidate's distance, sorted, the k smallest averaged.
+    # k = 20 of 24 takes the "all minus the largest" branch, 1 and 3 the other.
+    from stereomesh.geometry._grid_kernels import mean_neighbour_distance
+    from stereomesh.geometry.organised import pixel_index
+
+    pts, pixels = _organised_surface()
+    keep = np.random.default_rng(2).random(len(pts)) < 0.8  # empty pixels too
+    pc = _cloud(pts[keep], pixels=pixels[keep])
+    index = pixel_index(pc)
+    got = mean_neighbour_distance(pc.points, pc.pixels.astype(np.int64), index, k, 2)
+    h, w = index.shape
+    for i in np.random.default_rng(3).choice(len(pc), 300, replace=False):
+        col, row = pc.pixels[i]
+        win = index[max(0, row - 2):row + 3, max(0, col - 2):col + 3]
+        others = win[(win >= 0) & (win != i)]
+        d = np.sort(np.linalg.norm(pc.points[others] - pc.points[i], axis=1))[:k]
+        want = d.mean() if len(d) else np.inf
+        np.testing.assert_allclose(got[i], want, rtol=1e-12)
+
+
 def test_grid_normals_agree_with_open3d_plane_fits():
     # Reference: Open3D's estimate_normals (local plane fits, oriented to the camera).
     from stereomesh.geometry.organised import grid_normals

@@ -21,11 +21,13 @@ def mean_neighbour_distance(points, pixels, index, k, radius):
     n = points.shape[0]
     h, w = index.shape
     out = np.empty(n, np.float64)
-    # One buffer of the k nearest per chunk of points, not one per point: the
-    # allocation cost more than the distances.
+    side = 2 * radius + 1
+    # One buffer per chunk of points, not one per point: the allocation cost
+    # more than the distances.
     n_chunks = min(n, 256)
     for chunk in prange(n_chunks):
-        best = np.empty(max(k, 1), np.float64)
+        dist = np.empty(side * side, np.float64)
+        extreme = np.empty(side * side, np.float64)
         for i in range(chunk * n // n_chunks, (chunk + 1) * n // n_chunks):
             m = 0
             col, row = pixels[i, 0], pixels[i, 1]
@@ -44,25 +46,46 @@ def mean_neighbour_distance(points, pixels, index, k, radius):
                     ex = points[j, 0] - px
                     ey = points[j, 1] - py
                     ez = points[j, 2] - pz
-                    # Squared distances rank the same; roots only for the k kept.
-                    d = ex * ex + ey * ey + ez * ez
-                    if m == k and best[k - 1] <= d:
-                        continue
-                    # Insertion into the sorted list of the k nearest so far.
-                    p = m if m < k else k - 1
-                    while p > 0 and best[p - 1] > d:
-                        best[p] = best[p - 1]
-                        p -= 1
-                    best[p] = d
-                    if m < k:
-                        m += 1
+                    dist[m] = ex * ex + ey * ey + ez * ez
+                    m += 1
             if m == 0:
                 out[i] = np.inf
-            else:
+                continue
+            drop = m - k
+            if drop <= 0:
                 s = 0.0
                 for q in range(m):
-                    s += np.sqrt(best[q])
+                    s += np.sqrt(dist[q])
                 out[i] = s / m
+                continue
+            # The window holds only a few more candidates than ``k`` (24 for 20):
+            # the sum of all minus the few largest is cheaper than ranking all.
+            keep_small = drop > k
+            n_ext = k if keep_small else drop
+            e = 0
+            for q in range(m):
+                d = dist[q]
+                if e == n_ext:
+                    if (d >= extreme[e - 1]) if keep_small else (d <= extreme[e - 1]):
+                        continue
+                    e -= 1
+                # Insertion into the sorted list: ascending for the smallest,
+                # descending for the largest.
+                p = e
+                while p > 0 and ((extreme[p - 1] > d) if keep_small else (extreme[p - 1] < d)):
+                    extreme[p] = extreme[p - 1]
+                    p -= 1
+                extreme[p] = d
+                e += 1
+            s = 0.0
+            for q in range(n_ext):
+                s += np.sqrt(extreme[q])
+            if not keep_small:
+                total = 0.0
+                for q in range(m):
+                    total += np.sqrt(dist[q])
+                s = total - s
+            out[i] = s / k
     return out
 
 
