@@ -87,7 +87,9 @@ def run_job(
     Exception
         The cause of a failed stage, after the partial outputs are written.
     """
-    from stereomesh.io.outputs import write_outputs
+    from concurrent.futures import ThreadPoolExecutor
+
+    from stereomesh.io.outputs import write_disparity_files, write_outputs
     from stereomesh.report import Report
 
     out_dir = prepare_out_dir(out_dir)
@@ -95,23 +97,43 @@ def run_job(
         raise ValueError(f"stop_after must be one of {STAGES}")
     pair, records = read_while_warming(inputs, calib, params, layout=layout, swap=swap)
     report = Report(command, params, records)
-    try:
-        result = reconstruct(pair, params, workspace=workspace, progress=progress,
-                             stop_after=stop_after)
-    except StageFailed as failed:
-        cause = failed.__cause__ or failed
-        report.add_reconstruction(failed.partial)
-        report.fail(failed.stage, cause)
+    # The disparity files and their previews are written by a second thread while
+    # the geometry stages run: PNG encoding and file writes release the
+    # interpreter, and the geometry has single-threaded stretches to fill.
+    early = {}
+
+    def stage_done(stage, partial):
+        if stage == "disparity" and stop_after != "disparity":
+            early["disparity"] = writer.submit(write_disparity_files, out_dir, partial, report,
+                                               previews=previews)
+
+    def written():
+        # A failed early write is simply redone (and fails visibly) by write_outputs.
         try:
-            write_outputs(out_dir, failed.partial, report, previews=previews)
-        finally:
+            return early["disparity"].result() if "disparity" in early else None
+        except Exception:
+            return None
+
+    with ThreadPoolExecutor(1, thread_name_prefix="stereomesh-writer") as writer:
+        try:
+            result = reconstruct(pair, params, workspace=workspace, progress=progress,
+                                 stop_after=stop_after, on_stage=stage_done)
+        except StageFailed as failed:
+            cause = failed.__cause__ or failed
+            report.add_reconstruction(failed.partial)
+            report.fail(failed.stage, cause)
+            try:
+                write_outputs(out_dir, failed.partial, report, previews=previews,
+                              disparity_written=written())
+            finally:
+                report.finish(out_dir / "report.json", status="failed")
+            raise cause from None
+        report.add_reconstruction(result)
+        try:
+            write_outputs(out_dir, result, report, previews=previews,
+                          disparity_written=written())
+        except Exception as exc:
+            report.fail("export", exc)
             report.finish(out_dir / "report.json", status="failed")
-        raise cause from None
-    report.add_reconstruction(result)
-    try:
-        write_outputs(out_dir, result, report, previews=previews)
-    except Exception as exc:
-        report.fail("export", exc)
-        report.finish(out_dir / "report.json", status="failed")
-        raise
+            raise
     return report.finish(out_dir / "report.json")

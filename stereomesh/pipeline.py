@@ -367,6 +367,7 @@ def reconstruct(
     workspace=None,
     progress: Progress | None = None,
     stop_after: str = "repair",
+    on_stage: Callable[[str, Reconstruction], None] | None = None,
 ) -> Reconstruction:
     """The whole pipeline in memory: disparity, cloud, cleaning, surface, repair.
 
@@ -383,6 +384,10 @@ def reconstruct(
         ``progress(step, fraction)``; an exception it raises stops the run.
     stop_after : str
         Last stage to run, one of :data:`STAGES`.
+    on_stage : callable, optional
+        ``on_stage(stage, result)`` after each stage, with the results so far
+        (a caller can start writing them while the next stages run; it must
+        not modify them). An exception it raises stops the run like a failed stage.
 
     Returns
     -------
@@ -443,6 +448,11 @@ def reconstruct(
         except Exception as exc:
             raise StageFailed(stage, result) from exc
         result.figures[stage] = {"seconds": round(time.perf_counter() - t, 4), **figs}
+        if on_stage is not None:
+            try:
+                on_stage(stage, result)
+            except Exception as exc:
+                raise StageFailed(stage, result) from exc
     progress("done", 1.0)
     return result
 

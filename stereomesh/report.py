@@ -48,7 +48,7 @@ def software_versions() -> dict[str, str]:
     """Versions of stereomesh, Python and the libraries that shape the results."""
     out = {"stereomesh": __version__, "python": platform.python_version()}
     for dist in ("numpy", "scipy", "numba", "opencv-python-headless", "open3d-cpu", "open3d",
-                 "pymeshlab", "pillow", "vtk", "trimesh", "laspy", "pye57"):
+                 "pymeshlab", "pillow", "trimesh", "laspy", "pye57"):
         try:
             out[dist] = metadata.version(dist)
         except metadata.PackageNotFoundError:

@@ -51,19 +51,16 @@ PREVIEW_FACES = 600_000
 
 
 def write_mesh_preview(out_dir: Path, mesh, report, pair=None) -> None:
-    """A shaded render of the mesh from the left camera, or a warning when none can be made."""
-    from stereomesh.io.previews import RendererUnavailable, render_mesh_png
+    """A shaded render of the mesh from the left camera (``previews/mesh.png``)."""
+    from stereomesh.io.previews import render_mesh_png
 
     if pair is not None and mesh.pixels is not None and len(mesh.faces) > PREVIEW_FACES:
         from stereomesh.geometry.grid_repair import coarser_grid_mesh
 
         step = int(np.ceil(np.sqrt(len(mesh.faces) / PREVIEW_FACES)))
         mesh = coarser_grid_mesh(mesh, pair.rig, pair.colour, step)
-    try:
-        render_mesh_png(out_dir / "previews" / "mesh.png", mesh.vertices, mesh.faces, mesh.colors,
-                        normals=mesh.normals)
-    except RendererUnavailable as exc:  # no off-screen OpenGL here: the mesh is still good
-        report.warn(f"mesh preview not rendered: {exc}")
+    render_mesh_png(out_dir / "previews" / "mesh.png", mesh.vertices, mesh.faces, mesh.colors,
+                    normals=mesh.normals)
 
 
 def write_exports(out_dir: Path, result, report) -> None:
@@ -82,7 +79,32 @@ def write_exports(out_dir: Path, result, report) -> None:
         report.data.setdefault("exports", {})[name] = record
 
 
-def write_outputs(out_dir: str | Path, result, report, *, previews: bool = True) -> None:
+def write_disparity_files(out_dir: str | Path, result, report, *, previews: bool = True
+                          ) -> dict[str, float]:
+    """The disparity maps and, with ``previews``, their preview PNGs.
+
+    Needs only ``result.disparity``, so a caller can run it while the geometry
+    stages are still working; :func:`write_outputs` then skips these files.
+
+    Returns
+    -------
+    dict
+        Seconds spent: ``maps`` and, with ``previews``, ``previews``.
+    """
+    out_dir = Path(out_dir)
+    out_dir.mkdir(parents=True, exist_ok=True)
+    t = time.perf_counter()
+    write_disparity_outputs(out_dir, result.disparity, report)
+    seconds = {"maps": time.perf_counter() - t}
+    if previews:
+        t = time.perf_counter()
+        write_disparity_previews(out_dir, result, report)
+        seconds["previews"] = time.perf_counter() - t
+    return seconds
+
+
+def write_outputs(out_dir: str | Path, result, report, *, previews: bool = True,
+                  disparity_written: dict[str, float] | None = None) -> None:
     """Write everything a (possibly partial) reconstruction holds into ``out_dir``.
 
     Parameters
@@ -95,19 +117,20 @@ def write_outputs(out_dir: str | Path, result, report, *, previews: bool = True)
         Receives the output paths, the previews' timing and any warnings.
     previews : bool
         Also write the preview PNGs.
+    disparity_written : dict, optional
+        What an earlier :func:`write_disparity_files` call returned: those files
+        are already written and are not written again.
     """
     from stereomesh.io.ply import write_cloud_ply, write_mesh_ply
 
     out_dir = Path(out_dir)
     out_dir.mkdir(parents=True, exist_ok=True)
-    t = time.perf_counter()
-    if result.disparity is not None:
-        write_disparity_outputs(out_dir, result.disparity, report)
-    seconds = {"maps": time.perf_counter() - t}
-    if previews and result.disparity is not None:
-        t = time.perf_counter()
-        write_disparity_previews(out_dir, result, report)
-        seconds["previews"] = time.perf_counter() - t
+    if disparity_written is not None:
+        seconds = dict(disparity_written)
+    elif result.disparity is not None:
+        seconds = write_disparity_files(out_dir, result, report, previews=previews)
+    else:
+        seconds = {}
     complete = "repair" in result.figures
     if result.cloud is not None and "filter_cloud" in result.figures:
         t = time.perf_counter()

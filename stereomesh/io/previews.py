@@ -12,15 +12,24 @@ _BACKGROUND = (255, 255, 255)
 _FOV_SAMPLE = 200_000
 
 
-def _camera_view_angle(vertices: np.ndarray, focal: np.ndarray, aspect: float) -> float:
-    """Vertical view angle (degrees) from the origin that frames every vertex."""
+def _view_axes(focal: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Forward, up and right unit vectors of a camera at the origin looking at ``focal``.
+
+    Up is the camera frame's −y (image rows grow downward), made orthogonal to
+    the view direction.
+    """
     forward = focal / np.linalg.norm(focal)
     up = np.array([0.0, -1.0, 0.0])
     up = up - forward * (up @ forward)
     if np.linalg.norm(up) < 1e-9:
         up = np.array([0.0, 0.0, 1.0]) - forward * forward[2]
     up /= np.linalg.norm(up)
-    right = np.cross(forward, up)
+    return forward, up, np.cross(forward, up)
+
+
+def _camera_view_angle(vertices: np.ndarray, focal: np.ndarray, aspect: float) -> float:
+    """Vertical view angle (degrees) from the origin that frames every vertex."""
+    forward, up, right = _view_axes(focal)
     v = vertices
     if len(v) > _FOV_SAMPLE:
         v = v[np.random.default_rng(0).choice(len(v), _FOV_SAMPLE, replace=False)]
@@ -35,111 +44,63 @@ def _camera_view_angle(vertices: np.ndarray, focal: np.ndarray, aspect: float) -
     return float(np.clip(2.0 * np.degrees(np.arctan(half)) * 1.05, 5.0, 150.0))
 
 
-class RendererUnavailable(RuntimeError):
-    """No off-screen renderer on this machine (VTK missing or no OpenGL context)."""
+# Lights in the camera frame (x right, y down, z forward), each a direction
+# toward the light and a weight: a key light above left, a fill below right and
+# a head light, over an ambient term. Several soft lights rather than one: the
+# per-pixel normals of a depth map are noisy, and a single light turns that
+# noise into speckle.
+_LIGHTS = ((np.array([-0.45, -0.75, -1.0]), 0.55),
+           (np.array([0.6, 0.5, -1.0]), 0.2),
+           (np.array([0.0, 0.0, -1.0]), 0.3))
+_AMBIENT = 0.12
+# Samples per pixel side: the render is made this much larger and averaged down,
+# which smooths the edges of the silhouette.
+_SUPERSAMPLE = 2
 
 
-_renderer_state: dict = {}
+def shading(vertices: np.ndarray, normals: np.ndarray) -> np.ndarray:
+    """Lambert shading factor per vertex under the preview's lights, two-sided.
 
+    Parameters
+    ----------
+    vertices : (V, 3) float array
+        Camera frame.
+    normals : (V, 3) float array
+        Unit normals; those facing away from the camera are turned toward it,
+        so both sides of a surface are lit alike.
 
-def _vtk():
-    """VTK's rendering modules, imported on first use (with the OpenGL back end)."""
-    import vtkmodules.vtkRenderingOpenGL2  # noqa: F401  (registers the OpenGL classes)
-    from vtkmodules import vtkCommonCore, vtkCommonDataModel, vtkRenderingCore
-    from vtkmodules.util import numpy_support
-
-    # VTK warns "bad X server connection" on every run without a display, then
-    # renders off-screen all the same (EGL or OSMesa); keep its errors only.
-    vtkCommonCore.vtkLogger.SetStderrVerbosity(vtkCommonCore.vtkLogger.VERBOSITY_ERROR)
-    return vtkCommonCore, vtkCommonDataModel, vtkRenderingCore, numpy_support
-
-
-def _snapshot(renderer, width: int, height: int) -> np.ndarray:
-    """Render ``renderer`` off-screen into an (H, W, 3) uint8 image, top row first."""
-    _, _, rc, ns = _vtk()
-    window = rc.vtkRenderWindow()
-    try:
-        window.SetOffScreenRendering(1)
-        window.SetSize(width, height)
-        window.AddRenderer(renderer)
-        window.Render()
-        grab = rc.vtkWindowToImageFilter()
-        grab.SetInput(window)
-        grab.ReadFrontBufferOff()
-        # The window was just rendered; a second render would double the cost.
-        grab.ShouldRerenderOff()
-        grab.Update()
-        pixels = ns.vtk_to_numpy(grab.GetOutput().GetPointData().GetScalars())
-    finally:
-        window.Finalize()
-    # VTK's image origin is the bottom-left corner.
-    return np.ascontiguousarray(pixels.reshape(height, width, -1)[::-1, :, :3])
-
-
-def check_renderer() -> None:
-    """Raise :class:`RendererUnavailable` unless VTK can render off-screen here.
-
-    The probe renders an empty scene, independently of the mesh code, so a bug
-    in :func:`render_mesh_png` is never mistaken for a missing renderer. The
-    answer is kept for the process.
+    Returns
+    -------
+    (V,) float32 in [0, 1]
     """
-    if "error" not in _renderer_state:
-        try:
-            _, _, rc, _ = _vtk()
-            _snapshot(rc.vtkRenderer(), 8, 8)
-            _renderer_state["error"] = None
-        except Exception as exc:  # any failure of the bare probe means no renderer here
-            _renderer_state["error"] = f"{type(exc).__name__}: {exc}"
-    if _renderer_state["error"] is not None:
-        raise RendererUnavailable(
-            f"no off-screen renderer (VTK with OpenGL, EGL or OSMesa): "
-            f"{_renderer_state['error']}"
-        )
+    n = np.asarray(normals, np.float32)
+    away = np.einsum("ij,ij->i", n, np.asarray(vertices, np.float32)) > 0
+    n = np.where(away[:, None], -n, n)
+    light = np.full(len(n), _AMBIENT, np.float32)
+    for direction, weight in _LIGHTS:
+        d = (direction / np.linalg.norm(direction)).astype(np.float32)
+        light += np.float32(weight) * np.maximum(n @ d, 0)
+    return np.minimum(light, 1.0)
 
 
-def _poly_data(vertices: np.ndarray, faces: np.ndarray, colors, normals):
-    cc, dm, _, ns = _vtk()
-    points = cc.vtkPoints()
-    points.SetData(ns.numpy_to_vtk(np.ascontiguousarray(vertices, np.float64), deep=True))
-    cells = dm.vtkCellArray()
-    offsets = np.arange(0, 3 * len(faces) + 1, 3, dtype=np.int64)
-    cells.SetData(ns.numpy_to_vtkIdTypeArray(offsets, deep=True),
-                  ns.numpy_to_vtkIdTypeArray(np.ascontiguousarray(faces, np.int64).ravel(),
-                                             deep=True))
-    poly = dm.vtkPolyData()
-    poly.SetPoints(points)
-    poly.SetPolys(cells)
-    rgb = np.full((len(vertices), 3), 180, np.uint8) if colors is None else colors
-    scalars = ns.numpy_to_vtk(np.ascontiguousarray(rgb), deep=True,
-                              array_type=cc.VTK_UNSIGNED_CHAR)
-    scalars.SetName("rgb")
-    poly.GetPointData().SetScalars(scalars)
-    vectors = ns.numpy_to_vtk(np.ascontiguousarray(normals, np.float32), deep=True)
-    vectors.SetName("Normals")
-    poly.GetPointData().SetNormals(vectors)
-    return poly
-
-
-def render_mesh_png(
-    path: str | os.PathLike,
+def render_mesh(
     vertices: np.ndarray,
     faces: np.ndarray,
     colors: np.ndarray | None = None,
     size: tuple[int, int] = (800, 600),
     normals: np.ndarray | None = None,
-) -> None:
-    """Render a triangle mesh as seen from the left camera and save it as PNG.
+) -> np.ndarray:
+    """Render a triangle mesh as seen from the left camera; (H, W, 3) uint8 RGB.
 
     The camera sits at the origin looking at the centre of the mesh's bounding
     box with image y down, as the left rectified camera sees the scene; the
-    view angle is widened just enough to frame every vertex. Rendering is
-    off-screen with VTK, Gouraud-shaded under a light kit, with vertex colours
-    when given.
+    view angle is widened just enough to frame every vertex. Surfaces are
+    Gouraud-shaded under a few soft lights (both sides lit), in their vertex
+    colours or a light grey, on white, z-buffered and supersampled
+    :data:`_SUPERSAMPLE` times per side. Pure CPU: no OpenGL is needed.
 
     Parameters
     ----------
-    path : str or path-like
-        PNG file to write, atomically.
     vertices : (V, 3) float array
         Left camera frame (x right, y down, z forward), any length unit.
     faces : (F, 3) int array
@@ -155,23 +116,26 @@ def render_mesh_png(
     ------
     ValueError
         If the arrays have the wrong shapes or the mesh is empty.
-    RendererUnavailable
-        If VTK cannot render off-screen here (no OpenGL/EGL/OSMesa context).
-        Any other error is a bug and propagates as it is.
 
     Examples
     --------
-    >>> import numpy as np, tempfile, pathlib  # doctest: +SKIP
-    >>> v = np.array([[-1, -1, 5], [1, -1, 5], [0, 1, 5]], float)  # doctest: +SKIP
-    >>> render_mesh_png(pathlib.Path(tempfile.mkdtemp()) / "m.png", v,
-    ...                 np.array([[0, 2, 1]]))  # doctest: +SKIP
+    >>> import numpy as np
+    >>> v = np.array([[-1, -1, 5], [1, -1, 5], [0, 1, 5]], float)
+    >>> image = render_mesh(v, np.array([[0, 2, 1]]), size=(40, 30))
+    >>> image.shape, bool((image[15, 20] < 255).any()), image[0, 0].tolist()
+    ((30, 40, 3), True, [255, 255, 255])
     """
+    from stereomesh.geometry.surface import vertex_normals
+    from stereomesh.io._render_kernels import rasterise
+
     vertices = np.asarray(vertices, np.float64)
     faces = np.asarray(faces)
     if vertices.ndim != 2 or vertices.shape[1] != 3 or len(vertices) == 0:
         raise ValueError(f"vertices must have shape (V, 3) with V > 0, got {vertices.shape}")
     if faces.ndim != 2 or faces.shape[1] != 3 or len(faces) == 0:
         raise ValueError(f"faces must have shape (F, 3) with F > 0, got {faces.shape}")
+    if faces.min() < 0 or faces.max() >= len(vertices):
+        raise ValueError(f"faces index vertices outside 0..{len(vertices) - 1}")
     if colors is not None:
         colors = np.asarray(colors)
         if colors.shape != vertices.shape or colors.dtype != np.uint8:
@@ -184,46 +148,45 @@ def render_mesh_png(
     if width < 1 or height < 1:
         raise ValueError(f"size must be positive, got {size}")
 
-    check_renderer()
-    from PIL import Image
-
-    from stereomesh.geometry.surface import vertex_normals
-    from stereomesh.io.atomic import atomic_path
-
-    _, _, rc, _ = _vtk()
     if normals is None:
         normals = vertex_normals(vertices, faces)
     lo, hi = vertices.min(axis=0), vertices.max(axis=0)
     focal = (lo + hi) / 2.0
     if np.linalg.norm(focal) < 1e-12:
         focal = np.array([0.0, 0.0, 1.0])
-    mapper = rc.vtkPolyDataMapper()
-    mapper.SetInputData(_poly_data(vertices, faces, colors, normals))
-    mapper.SetColorModeToDirectScalars()
-    mapper.ScalarVisibilityOn()
-    actor = rc.vtkActor()
-    actor.SetMapper(mapper)
-    actor.GetProperty().SetInterpolationToGouraud()
-    renderer = rc.vtkRenderer()
-    renderer.SetBackground(*(c / 255.0 for c in _BACKGROUND))
-    renderer.AddActor(actor)
-    # Several soft lights rather than one head light: per-pixel normals of a
-    # depth map are noisy, and a single light turns that noise into speckle.
-    renderer.AutomaticLightCreationOff()
-    rc.vtkLightKit().AddLightsToRenderer(renderer)
-    camera = renderer.GetActiveCamera()
-    camera.SetPosition(0.0, 0.0, 0.0)
-    camera.SetFocalPoint(*focal)
-    camera.SetViewUp(0.0, -1.0, 0.0)
-    camera.SetViewAngle(_camera_view_angle(vertices, focal, width / height))
-    renderer.ResetCameraClippingRange()
-    image = _snapshot(renderer, width, height)
-    if image.shape[:2] != (height, width):
-        raise RuntimeError(
-            f"mesh preview came back with shape {image.shape}, not {(height, width)}"
-        )
-    with atomic_path(path) as tmp:
-        Image.fromarray(image).save(tmp, format="PNG")
+    forward, up, right = _view_axes(focal)
+    angle = _camera_view_angle(vertices, focal, width / height)
+    k = _SUPERSAMPLE
+    big_w, big_h = width * k, height * k
+    focal_px = (big_h / 2.0) / np.tan(np.radians(angle) / 2.0)
+    depth = vertices @ forward
+    with np.errstate(divide="ignore", invalid="ignore"):
+        inv_depth = np.where(depth > 1e-12, 1.0 / depth, 0.0)
+    screen = np.empty((len(vertices), 2), np.float64)
+    screen[:, 0] = big_w / 2.0 + focal_px * (vertices @ right) * inv_depth
+    screen[:, 1] = big_h / 2.0 - focal_px * (vertices @ up) * inv_depth
+    albedo = (np.full((len(vertices), 3), 200, np.float32) if colors is None
+              else colors.astype(np.float32))
+    shade = albedo * shading(vertices, normals)[:, None]
+    image, zbuf = rasterise(screen, inv_depth, shade, np.ascontiguousarray(faces, np.int64),
+                            big_w, big_h)
+    image[zbuf <= 0] = _BACKGROUND
+    image = image.reshape(height, k, width, k, 3).mean(axis=(1, 3))
+    return np.clip(np.rint(image), 0, 255).astype(np.uint8)
+
+
+def render_mesh_png(
+    path: str | os.PathLike,
+    vertices: np.ndarray,
+    faces: np.ndarray,
+    colors: np.ndarray | None = None,
+    size: tuple[int, int] = (800, 600),
+    normals: np.ndarray | None = None,
+) -> None:
+    """:func:`render_mesh` written atomically to the PNG file ``path`` (same parameters)."""
+    from stereomesh.io.images import write_png
+
+    write_png(path, render_mesh(vertices, faces, colors, size, normals), compress_level=1)
 
 
 # --- image previews -------------------------------------------------------------------
