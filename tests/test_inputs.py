@@ -182,3 +182,25 @@ def test_mpo_file_gives_the_plain_pairs_disparity(tmp_path, plain_disparity):
     with pytest.raises(InputError, match="holds 1 image"):
         left.save(tmp_path / "one.mpo", format="MPO")
         read_stereo_input([tmp_path / "one.mpo"], DEMO / "calib.json")
+
+
+def test_exif_focal_length_in_pixels(tmp_path):
+    # EXIF 2.3: FocalLengthIn35mmFilm (0xA405) refers to a 36 mm wide frame, so
+    # f_px = f35 / 36 * width; FocalLength (0x920A) with FocalPlaneXResolution
+    # (0xA20E, unit 0xA210: 2 = inch) gives f_px = f_mm * res / 25.4.
+    from PIL import Image
+
+    from stereomesh.io.inputs import exif_focal_px
+
+    image = Image.fromarray(np.zeros((30, 72, 3), np.uint8))
+    exif = Image.Exif()
+    exif.get_ifd(0x8769)[0xA405] = 50
+    image.save(tmp_path / "a.jpg", exif=exif)
+    assert exif_focal_px(tmp_path / "a.jpg", 72) == pytest.approx(100.0)
+    exif = Image.Exif()
+    ifd = exif.get_ifd(0x8769)
+    ifd[0x920A], ifd[0xA20E], ifd[0xA210] = 5.0, 2540.0, 2
+    image.save(tmp_path / "b.jpg", exif=exif)
+    assert exif_focal_px(tmp_path / "b.jpg", 72) == pytest.approx(500.0)
+    image.save(tmp_path / "c.png")  # no EXIF: no focal length, and no full decode
+    assert exif_focal_px(tmp_path / "c.png", 72) is None

@@ -28,6 +28,10 @@ def exif_focal_px(path: Path, width: int) -> float | None:
 
     try:
         with Image.open(path) as im:
+            # A PNG's EXIF may follow the pixels, and looking for it there decodes
+            # the whole image; camera photos are JPEG, whose EXIF comes first.
+            if im.format == "PNG" and "exif" not in im.info:
+                return None
             exif = im.getexif().get_ifd(0x8769)
             full_width = im.size[0]
     except (UnidentifiedImageError, OSError):

@@ -17,6 +17,7 @@ written, so a failed stage never costs the user the earlier results.
 from __future__ import annotations
 
 import time
+from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 
 import numpy as np
@@ -79,6 +80,12 @@ def write_exports(out_dir: Path, result, report) -> None:
         report.data.setdefault("exports", {})[name] = record
 
 
+def _timed(function, *args) -> float:
+    t = time.perf_counter()
+    function(*args)
+    return time.perf_counter() - t
+
+
 def write_disparity_files(out_dir: str | Path, result, report, *, previews: bool = True
                           ) -> dict[str, float]:
     """The disparity maps and, with ``previews``, their preview PNGs.
@@ -132,21 +139,26 @@ def write_outputs(out_dir: str | Path, result, report, *, previews: bool = True,
     else:
         seconds = {}
     complete = "repair" in result.figures
-    if result.cloud is not None and "filter_cloud" in result.figures:
-        t = time.perf_counter()
-        write_cloud_ply(out_dir / "cloud.ply", result.cloud, scale=result.scale)
-        report.output("cloud", out_dir / "cloud.ply")
-        seconds["cloud"] = time.perf_counter() - t
-    if result.mesh is not None and complete:
-        t = time.perf_counter()
-        write_mesh_ply(out_dir / "mesh.ply", result.mesh, scale=result.scale)
-        report.output("mesh", out_dir / "mesh.ply")
-        write_exports(out_dir, result, report)
-        seconds["mesh"] = time.perf_counter() - t
-        if previews:
+    preview = None
+    with ThreadPoolExecutor(1, thread_name_prefix="stereomesh-preview") as pool:
+        if previews and result.mesh is not None and complete:
+            # Drawn beside the file writes below: both spend most of their
+            # time outside the interpreter (the rasteriser releases it).
+            preview = pool.submit(_timed, write_mesh_preview, out_dir, result.mesh, report,
+                                  result.pair)
+        if result.cloud is not None and "filter_cloud" in result.figures:
             t = time.perf_counter()
-            write_mesh_preview(out_dir, result.mesh, report, result.pair)
-            seconds["previews"] = seconds.get("previews", 0.0) + time.perf_counter() - t
+            write_cloud_ply(out_dir / "cloud.ply", result.cloud, scale=result.scale)
+            report.output("cloud", out_dir / "cloud.ply")
+            seconds["cloud"] = time.perf_counter() - t
+        if result.mesh is not None and complete:
+            t = time.perf_counter()
+            write_mesh_ply(out_dir / "mesh.ply", result.mesh, scale=result.scale)
+            report.output("mesh", out_dir / "mesh.ply")
+            write_exports(out_dir, result, report)
+            seconds["mesh"] = time.perf_counter() - t
+        if preview is not None:
+            seconds["previews"] = seconds.get("previews", 0.0) + preview.result()
     report.stage("export", sum(v for k, v in seconds.items() if k != "previews"),
                  **({"faces": len(result.mesh.faces), "vertices": len(result.mesh.vertices)}
                     if result.mesh is not None and complete else {}))
