@@ -471,7 +471,9 @@ def warm_up_stages(stop_after: str = "repair") -> None:
     --------
     >>> warm_up_stages("disparity")
     """
+    from stereomesh.geometry._mesh_kernels import kept_faces
     from stereomesh.geometry.repair import _small_components, count_boundary_loops
+    from stereomesh.io._render_kernels import rasterise
     from stereomesh.matching import disparity as engine
     from stereomesh.matching._sgm_kernels import census_unary
     from stereomesh.matching.winners import Winners
@@ -484,6 +486,10 @@ def warm_up_stages(stop_after: str = "repair") -> None:
     corners = np.array([[0.0, 0, 1], [1, 0, 1], [1, 1, 1], [0, 1, 1]])
     _small_components(corners, square, 0.01)
     count_boundary_loops(square, 4)
+    kept_faces(square, np.ones(2, bool), 4)
+    if stop_after == "repair":  # the mesh preview, drawn last
+        rasterise(corners[:, :2] * 4.0, np.ones(4), np.zeros((4, 3), np.float32),
+                  square.astype(np.int64), 4, 4)
 
     shift = 6
     rng = np.random.default_rng(0)
