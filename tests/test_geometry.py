@@ -350,7 +350,7 @@ def _supported_faces_reference(vertices, faces, support, max_spacings, rig=None,
     return ok[faces].all(axis=1) & (dc <= max_spacings * spacing[ic])
 
 
-def test_supported_faces_matches_brute_force():
+def test_supported_faces_matches_brute_force(monkeypatch):
     rng = np.random.default_rng(3)
     support = np.c_[rng.uniform(-0.2, 0.2, (300, 2)), rng.uniform(1.99, 2.01, 300)]
     # Vertices near the points and far from them, in the view and out of it;
@@ -365,6 +365,13 @@ def test_supported_faces_matches_brute_force():
         want = _supported_faces_reference(vertices, faces, support, k, rig, shape)
         np.testing.assert_array_equal(got, want)
         assert 0 < got.sum() < len(faces)
+    # The spacings measured in chunks (12-megapixel clouds) give the same answer.
+    from stereomesh.geometry import surface
+
+    monkeypatch.setattr(surface, "_SPACING_CHUNK", 7)
+    np.testing.assert_array_equal(supported_faces(vertices, faces, support, 3.0, RIG, shape),
+                                  _supported_faces_reference(vertices, faces, support, 3.0,
+                                                             RIG, shape))
     with pytest.raises(ValueError):
         supported_faces(vertices, faces, support, 0.0)
     with pytest.raises(ValueError):

@@ -28,6 +28,9 @@ _POISSON_FILLED_SPACINGS = 2.0
 # side of keeping surface.
 _SPACING_NEIGHBOUR = 4
 
+# Support points per k-d tree query when measuring their spacing.
+_SPACING_CHUNK = 1_000_000
+
 
 def vertex_normals(vertices: np.ndarray, faces: np.ndarray) -> np.ndarray:
     """Area-weighted vertex normals of a triangle mesh.
@@ -340,8 +343,8 @@ def support_points(
         Points in the left camera frame of ``rig``.
     rig : RectifiedRig
     max_hole_edges : int
-        Largest hole filled, in boundary edges of the pixel grid (0 or 1, 2:
-        none).
+        Largest hole filled, in boundary edges of the pixel grid; below 3 no
+        hole is.
     max_depth_jump : float
         Largest relative deviation of a hole's surround from a plane.
 
@@ -461,8 +464,11 @@ def supported_faces(
         return np.zeros(0, bool)
     tree = cKDTree(support)
     k = min(_SPACING_NEIGHBOUR + 1, len(support))
-    dist, _ = tree.query(support, k=k)
-    spacing = dist[:, -1]
+    spacing = np.empty(len(support))
+    # In chunks: the neighbour table of a 12-megapixel cloud would take 1 GB.
+    for start in range(0, len(support), _SPACING_CHUNK):
+        dist, _ = tree.query(support[start : start + _SPACING_CHUNK], k=k)
+        spacing[start : start + len(dist)] = dist[:, -1]
 
     def near(points):
         d, i = tree.query(points, k=1)
@@ -497,11 +503,11 @@ def poisson_mesh(
     The surface is cut back, because Poisson closes every gap: vertices whose
     Poisson density (octree support) is below the ``density_quantile``
     quantile are removed with their faces; faces with a vertex outside the
-    cloud's bounding box, enlarged on each side by 5 % of its size (at least two
-    median point spacings), are
-    removed; then, with ``trim_spacings > 0``, every face not supported by the
-    points (:func:`supported_faces`): farther than ``trim_spacings`` local
-    point spacings from them, or, with ``rig``, out of the left camera's view.
+    cloud's bounding box, enlarged on each side by 5 % of its size (at least
+    two median point spacings), are removed; then, with ``trim_spacings > 0``,
+    every face not supported by the points (:func:`supported_faces`): farther
+    than ``trim_spacings`` local point spacings from them, or, with ``rig``,
+    out of the left camera's view.
     With ``rig`` the small holes grid repair would fill count as supported
     (:func:`support_points`), so only gaps larger than that stay open: the
     surface Poisson invents across a depth discontinuity, behind a foreground
