@@ -192,6 +192,10 @@ class SurfaceParams(_Section):
     poisson_depth: int = param(9, "octree depth of screened Poisson", min=5, max=12)
     density_quantile: float = param(0.02, "Poisson vertices below this density quantile are "
                                     "trimmed", min=0.0, max=0.5)
+    trim_spacings: float = param(1.5, "Poisson faces farther than this many local point "
+                                 "spacings from the points (small holes, as repair would "
+                                 "fill them, count as points) or out of the left camera's "
+                                 "view are trimmed; 0 keeps them", min=0.0, max=100.0)
 
 
 @dataclass

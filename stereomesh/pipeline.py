@@ -290,8 +290,11 @@ def surface_from_cloud(cloud, params: Params, rig: RectifiedRig | None = None):
         mesh joins neighbouring pixels that survived the filters. Poisson needs
         normals (:func:`clean_cloud` estimates them).
     params : Params
-        The ``surface`` section.
+        The ``surface`` section (and, for Poisson, ``repair.max_hole_edges``:
+        holes that small are not trimmed away).
     rig : RectifiedRig, optional
+        Required for the grid; for Poisson it adds the view test and the small
+        holes to the trim (see :func:`~stereomesh.geometry.surface.poisson_mesh`).
 
     Returns
     -------
@@ -317,7 +320,10 @@ def surface_from_cloud(cloud, params: Params, rig: RectifiedRig | None = None):
             from stereomesh.geometry.filters import estimate_normals
 
             cloud = estimate_normals(cloud)
-        mesh = poisson_mesh(cloud, **section_arguments(sp, poisson_mesh))
+        # The rig lets the trim test the camera's view and keep the small holes
+        # repair would fill; a cloud from elsewhere may come without one.
+        mesh = poisson_mesh(cloud, rig=rig, max_hole_edges=params.repair.max_hole_edges,
+                            **section_arguments(sp, poisson_mesh))
     return mesh, {"method": sp.surface, "vertices": len(mesh.vertices),
                   "faces": len(mesh.faces)}
 

@@ -131,7 +131,7 @@ def test_every_schema_value_runs_or_is_refused_with_a_reason(small_scene, tmp_pa
             if row["name"] == "poisson_depth" and value > slow["poisson_depth"]:
                 continue
             extra = [row["flag"], value]
-            if row["name"] in ("poisson_depth", "density_quantile"):
+            if row["name"] in ("poisson_depth", "density_quantile", "trim_spacings"):
                 extra += ["--surface", "poisson"]
             out = tmp_path / f"{row['name']}-{value}"
             code, err = _main(*base, *extra, "--out", out, capsys=capsys)

@@ -6,7 +6,13 @@ import pytest
 from stereomesh.geometry.data import PointCloud, TriMesh
 from stereomesh.geometry.filters import estimate_normals, filter_cloud, voxel_average
 from stereomesh.geometry.repair import count_boundary_loops, repair_mesh, split_at_centroids
-from stereomesh.geometry.surface import depth_grid_mesh, poisson_mesh, vertex_normals
+from stereomesh.geometry.surface import (
+    depth_grid_mesh,
+    poisson_mesh,
+    support_points,
+    supported_faces,
+    vertex_normals,
+)
 from stereomesh.geometry.triangulate import triangulate
 from stereomesh.rectify import RectifiedRig
 
@@ -352,6 +358,152 @@ def test_poisson_mesh_reconstructs_plane_near_the_samples():
     # The surface faces the camera, as the cloud's normals did.
     fn = _face_normals(mesh.vertices, mesh.faces)
     assert np.mean(fn[:, 2] < 0) > 0.95
+
+
+def _plane_cloud(rig, z, missing):
+    """A per-pixel cloud of the plane Z = ``z`` seen by ``rig``, without the ``missing`` pixels."""
+    w, h = rig.image_size
+    rows, cols = np.mgrid[0:h, 0:w]
+    keep = ~missing[rows, cols]
+    pix = np.c_[cols[keep], rows[keep]].astype(np.int32)
+    pts = np.c_[(pix[:, 0] - rig.cx) * z / rig.focal_px, (pix[:, 1] - rig.cy) * z / rig.focal_px,
+                np.full(len(pix), z)]
+    cloud = _cloud(pts, pixels=pix)
+    cloud.normals = np.tile(np.array([0, 0, -1], np.float32), (len(pts), 1))
+    return cloud
+
+
+def _supported_faces_reference(vertices, faces, support, max_spacings, rig=None, shape=None):
+    # Brute force over every pair of points: the k-d tree's answer, the slow way.
+    def nearest(p):
+        d = np.linalg.norm(p[:, None, :] - support[None, :, :], axis=2)
+        return d.min(axis=1), d.argmin(axis=1)
+
+    d_ss = np.sort(np.linalg.norm(support[:, None] - support[None], axis=2), axis=1)
+    spacing = d_ss[:, 4]
+    d, i = nearest(vertices)
+    ok = d <= max_spacings * spacing[i]
+    if rig is not None:
+        u = rig.focal_px * vertices[:, 0] / vertices[:, 2] + rig.cx
+        v = rig.focal_px * vertices[:, 1] / vertices[:, 2] + rig.cy
+        ok &= (vertices[:, 2] > 0) & (u >= -0.5) & (u < shape[1] - 0.5) & (v >= -0.5) \
+            & (v < shape[0] - 0.5)
+    dc, ic = nearest(vertices[faces].mean(axis=1))
+    return ok[faces].all(axis=1) & (dc <= max_spacings * spacing[ic])
+
+
+def test_supported_faces_matches_brute_force(monkeypatch):
+    rng = np.random.default_rng(3)
+    support = np.c_[rng.uniform(-0.2, 0.2, (300, 2)), rng.uniform(1.99, 2.01, 300)]
+    # Vertices near the points and far from them, in the view and out of it;
+    # each face joins a vertex to its two nearest.
+    vertices = support[:200] + rng.normal(0.0, 0.03, (200, 3))
+    vertices[:20, :2] *= 4.0
+    d = np.linalg.norm(vertices[:, None] - vertices[None], axis=2)
+    faces = np.c_[np.arange(200), np.argsort(d, axis=1)[:, 1:3]]
+    shape = (48, 64)
+    for k, rig in ((1.5, None), (3.0, RIG), (8.0, RIG)):
+        got = supported_faces(vertices, faces, support, k, rig, shape if rig else None)
+        want = _supported_faces_reference(vertices, faces, support, k, rig, shape)
+        np.testing.assert_array_equal(got, want)
+        assert 0 < got.sum() < len(faces)
+    # The spacings measured in chunks (12-megapixel clouds) give the same answer.
+    from stereomesh.geometry import surface
+
+    monkeypatch.setattr(surface, "_SPACING_CHUNK", 7)
+    np.testing.assert_array_equal(supported_faces(vertices, faces, support, 3.0, RIG, shape),
+                                  _supported_faces_reference(vertices, faces, support, 3.0,
+                                                             RIG, shape))
+    with pytest.raises(ValueError):
+        supported_faces(vertices, faces, support, 0.0)
+    with pytest.raises(ValueError):
+        supported_faces(vertices, faces, support, 2.0, RIG)
+
+
+def test_support_points_fill_small_inner_holes_only():
+    rig = RectifiedRig(focal_px=100.0, cx=20.0, cy=15.0, baseline=0.1, image_size=(40, 30))
+    missing = np.zeros((30, 40), bool)
+    missing[5:7, 5:7] = True          # small: a loop of 8 edges, filled
+    missing[10:22, 20:32] = True      # 48 edges: beyond the default 30, left open
+    missing[0:3, 30:33] = True        # small but on the border: left open
+    cloud = _plane_cloud(rig, 2.0, missing)
+    support, shape = support_points(cloud, rig)
+    assert shape == (30, 40)
+    fill = support[len(cloud):]
+    assert len(fill) == 4
+    # Harmonic interpolation reproduces a plane exactly (see grid_repair).
+    np.testing.assert_allclose(fill[:, 2], 2.0, rtol=1e-6)
+    cols = np.rint(fill[:, 0] * 100 / 2.0 + 20).astype(int)
+    rows = np.rint(fill[:, 1] * 100 / 2.0 + 15).astype(int)
+    assert set(zip(rows.tolist(), cols.tolist(), strict=True)) == {(5, 5), (5, 6), (6, 5), (6, 6)}
+    # Without pixels the points are projected: the same fill.
+    bare = _cloud(cloud.points)
+    np.testing.assert_allclose(support_points(bare, rig)[0][len(cloud):], fill, atol=1e-9)
+    assert len(support_points(cloud, rig, max_hole_edges=0)[0]) == len(cloud)
+
+
+def _covered(mesh, rig, u, v):
+    """Whether the ray of each left-image position (u, v) hits the mesh (Open3D's ray caster)."""
+    import open3d as o3d
+
+    scene = o3d.t.geometry.RaycastingScene()
+    scene.add_triangles(o3d.core.Tensor(mesh.vertices.astype(np.float32)),
+                        o3d.core.Tensor(mesh.faces.astype(np.uint32)))
+    d = np.c_[(u - rig.cx) / rig.focal_px, (v - rig.cy) / rig.focal_px, np.ones(len(u))]
+    rays = np.c_[np.zeros((len(u), 3)), d].astype(np.float32)
+    return np.isfinite(scene.cast_rays(o3d.core.Tensor(rays))["t_hit"].numpy())
+
+
+def test_poisson_trim_opens_large_holes_keeps_small_ones_and_stays_in_view():
+    # A plane seen by the camera with a 12 x 12 pixel hole (larger than the
+    # small-hole limit) and a 4 x 4 one (smaller): Poisson closes both; the
+    # trim must reopen the large one, keep the small one covered and keep the
+    # rest of the plane. Positions are probed by rays through the image.
+    rig = RectifiedRig(focal_px=100.0, cx=20.0, cy=15.0, baseline=0.1, image_size=(40, 30))
+    z = 2.0
+    missing = np.zeros((30, 40), bool)
+    missing[5:9, 5:9] = True
+    missing[10:22, 20:32] = True
+    cloud = _plane_cloud(rig, z, missing)
+    spacing = z / rig.focal_px
+    k = 1.5
+    # Pixel (r, c) covers [c - 0.5, c + 0.5); the large hole's cols 20:32 and
+    # rows 10:22 shrunk by the trim distance (k spacings, one pixel each here)
+    # and the half pixel from a pixel's centre to its edge.
+    gu, gv = np.meshgrid(np.arange(21.5, 30.6, 0.5), np.arange(11.5, 20.6, 0.5))
+    deep = (gu > 19.5 + k + 0.5) & (gu < 31.5 - k - 0.5) & (gv > 9.5 + k + 0.5) \
+        & (gv < 21.5 - k - 0.5)
+    gu, gv = gu[deep], gv[deep]
+    # The small hole's middle is 2.5 pixels from its rim: the distance alone
+    # would open it.
+    small_u, small_v = np.array([6.0, 6.5, 7.0]), np.array([6.5, 6.5, 6.5])
+
+    closed = poisson_mesh(cloud, poisson_depth=7, trim_spacings=0.0)
+    assert _covered(closed, rig, gu, gv).mean() > 0.5      # Poisson closed the large hole
+
+    mesh = poisson_mesh(cloud, poisson_depth=7, trim_spacings=k, rig=rig)
+    assert not _covered(mesh, rig, gu, gv).any()
+    assert _covered(mesh, rig, small_u, small_v).all()
+    unfilled = poisson_mesh(cloud, poisson_depth=7, trim_spacings=k, rig=rig, max_hole_edges=0)
+    assert not _covered(unfilled, rig, small_u, small_v).any()
+    # In view: every vertex projects into the image.
+    v = mesh.vertices
+    u_img = rig.focal_px * v[:, 0] / v[:, 2] + rig.cx
+    v_img = rig.focal_px * v[:, 1] / v[:, 2] + rig.cy
+    assert np.all((u_img >= -0.5) & (u_img < 39.5) & (v_img >= -0.5) & (v_img < 29.5))
+    # On the plane, and the kept area is the image's plane minus the large
+    # hole, to within the trim band around the hole and the image's rim.
+    np.testing.assert_allclose(v[:, 2], z, atol=0.05 * spacing)
+    a, b, c = (v[mesh.faces[:, j]] for j in range(3))
+    area = 0.5 * np.linalg.norm(np.cross(b - a, c - a), axis=1).sum() / spacing**2
+    expected = 40 * 30 - 12 * 12   # the small hole is covered
+    rim = 2 * (40 + 30) + 4 * 12
+    assert abs(area - expected) < 0.5 * rim, (area, expected)
+    # Without the rig only the distance applies: the large hole opens too.
+    bare = poisson_mesh(cloud, poisson_depth=7, trim_spacings=k)
+    assert not _covered(bare, rig, gu, gv).any()
+    with pytest.raises(ValueError):
+        poisson_mesh(cloud, trim_spacings=-1.0)
 
 
 def test_poisson_mesh_needs_normals():

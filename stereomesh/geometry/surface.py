@@ -23,6 +23,15 @@ _POISSON_BOX_MARGIN = 0.05
 # not supported by a measurement, so it is flagged as filled.
 _POISSON_FILLED_SPACINGS = 2.0
 
+# A support point's spacing is its distance to this many-th nearest other point:
+# on a pixel grid the 4th is an edge neighbour, and where a slanted surface
+# stretches the grid one way it is the stretched one, so the trim errs on the
+# side of keeping surface.
+_SPACING_NEIGHBOUR = 4
+
+# Support points per k-d tree query when measuring their spacing.
+_SPACING_CHUNK = 1_000_000
+
 
 def vertex_normals(vertices: np.ndarray, faces: np.ndarray) -> np.ndarray:
     """Area-weighted vertex normals of a triangle mesh.
@@ -333,19 +342,198 @@ def _median_spacing(points: np.ndarray, sample: int = 100_000, seed: int = 0) ->
     return float(np.median(d)) if d.size else 0.0
 
 
+def support_points(
+    cloud: PointCloud,
+    rig: RectifiedRig,
+    max_hole_edges: int = 30,
+    max_depth_jump: float = 0.03,
+) -> tuple[np.ndarray, tuple[int, int]]:
+    """The cloud's points plus the points that would fill its small holes.
+
+    The points are put back on the left image (their ``pixels``, else their
+    projection), and the holes that grid repair would fill
+    (:func:`~stereomesh.geometry.grid_repair.find_small_holes`: small, away
+    from the border, a flat surround) are filled by the same harmonic
+    interpolation of disparity and triangulated. A surface over such a hole is
+    as honest as the grid's fill; a surface over any larger gap is not.
+
+    Parameters
+    ----------
+    cloud : PointCloud
+        Points in the left camera frame of ``rig``.
+    rig : RectifiedRig
+    max_hole_edges : int
+        Largest hole filled, in boundary edges of the pixel grid; below 3 no
+        hole is.
+    max_depth_jump : float
+        Largest relative deviation of a hole's surround from a plane.
+
+    Returns
+    -------
+    points : (N + M, 3) float64
+        The cloud's N points, then the M fill points, in the cloud's unit.
+    shape : (H, W) tuple of int
+        The left image's size (from ``rig.image_size``, else the points' extent).
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from stereomesh.rectify import RectifiedRig
+    >>> rig = RectifiedRig(focal_px=100.0, cx=4.0, cy=4.0, baseline=0.1, image_size=(9, 9))
+    >>> cols, rows = np.meshgrid(np.arange(9), np.arange(9))
+    >>> keep = (cols != 4) | (rows != 4)                   # one pixel missing
+    >>> pix = np.c_[cols[keep], rows[keep]]
+    >>> pts = np.c_[(pix - 4.0) / 100.0, np.ones(len(pix))]
+    >>> cloud = PointCloud(pts, np.zeros((80, 3), np.uint8), np.ones(80, np.float32),
+    ...                    np.zeros(80, np.float32), pixels=pix.astype(np.int32))
+    >>> support, shape = support_points(cloud, rig)
+    >>> support[80:].round(6).tolist(), shape
+    ([[0.0, 0.0, 1.0]], (9, 9))
+    """
+    from stereomesh.geometry.grid_repair import fill_small_holes, pixel_maps
+
+    points = cloud.points
+    fb = float(rig.focal_px) * float(rig.baseline)
+    if cloud.pixels is not None:
+        pixels = cloud.pixels.astype(np.int64)
+    else:
+        with np.errstate(invalid="ignore", divide="ignore"):
+            u = rig.focal_px * points[:, 0] / points[:, 2] + rig.cx
+            v = rig.focal_px * points[:, 1] / points[:, 2] + rig.cy
+        pixels = np.c_[np.rint(u), np.rint(v)]
+        pixels = np.where(np.isfinite(pixels), pixels, -1).astype(np.int64)
+    w, h = rig.image_size
+    if (w, h) == (0, 0):
+        w, h = (int(pixels[:, 0].max()) + 1, int(pixels[:, 1].max()) + 1) if len(pixels) \
+            else (1, 1)
+    on = ((pixels[:, 0] >= 0) & (pixels[:, 0] < w) & (pixels[:, 1] >= 0) & (pixels[:, 1] < h)
+          & (points[:, 2] > 0))
+    if max_hole_edges < 3 or not on.any():
+        return points, (h, w)
+    # Where several points share a pixel (a thinned or edited cloud) the nearest
+    # one stands for it, as the camera would see it.
+    order = np.argsort(-points[on, 2], kind="stable")
+    pix, pts = pixels[on][order], points[on][order]
+    n = len(pts)
+    disparity, _, _ = pixel_maps(pix, pts, np.zeros(n, np.float32), np.zeros(n, np.float32),
+                                 rig, (h, w))
+    filled_d, filled, _ = fill_small_holes(disparity, max_hole_edges, max_depth_jump)
+    rows, cols = np.nonzero(filled)
+    z = fb / (filled_d[rows, cols].astype(np.float64) + rig.doffs)
+    fill = np.c_[(cols - rig.cx) * z / rig.focal_px, (rows - rig.cy) * z / rig.focal_px, z]
+    return np.concatenate([points, fill]), (h, w)
+
+
+def supported_faces(
+    vertices: np.ndarray,
+    faces: np.ndarray,
+    support: np.ndarray,
+    max_spacings: float = 2.0,
+    rig: RectifiedRig | None = None,
+    shape: tuple[int, int] | None = None,
+) -> np.ndarray:
+    """Faces of a surface that lie on measured (or small-hole) points and in view.
+
+    A face is kept when its three vertices and its centroid are each within
+    ``max_spacings`` local point spacings of a support point (the centroid
+    test drops faces whose corners sit on opposite rims of a gap), and, with
+    ``rig``, when its vertices are in front of the left camera and project into
+    its image: a surface the camera never saw was never measured.
+
+    Parameters
+    ----------
+    vertices : (V, 3) float array
+        Surface vertices, in the unit of ``support``.
+    faces : (F, 3) int array
+    support : (N, 3) float array, N >= 2
+        The points that support the surface (see :func:`support_points`).
+    max_spacings : float
+        Largest distance from a support point, in units of that point's
+        spacing (its distance to its 4th nearest support neighbour).
+    rig : RectifiedRig, optional
+        Left camera of the frame the points are in.
+    shape : (H, W) tuple of int, optional
+        Image size for the view test; required with ``rig``.
+
+    Returns
+    -------
+    (F,) bool array
+        True for the faces to keep.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> g = np.mgrid[0:10, 0:10].reshape(2, -1).T.astype(float)
+    >>> support = np.c_[g, np.zeros(len(g))]
+    >>> v = np.array([[1, 1, 0], [2, 1, 0], [1, 2, 0], [30, 30, 0]], float)
+    >>> supported_faces(v, np.array([[0, 1, 2], [0, 1, 3]]), support).tolist()
+    [True, False]
+    """
+    from scipy.spatial import cKDTree
+
+    vertices = np.asarray(vertices, np.float64)
+    faces = np.asarray(faces)
+    support = np.asarray(support, np.float64)
+    if len(support) < 2:
+        raise ValueError(f"support needs at least 2 points, got {len(support)}")
+    if not max_spacings > 0:
+        raise ValueError(f"max_spacings must be positive, got {max_spacings}")
+    if rig is not None and shape is None:
+        raise ValueError("the view test needs the image shape with the rig")
+    if len(faces) == 0:
+        return np.zeros(0, bool)
+    tree = cKDTree(support)
+    k = min(_SPACING_NEIGHBOUR + 1, len(support))
+    spacing = np.empty(len(support))
+    # In chunks: the neighbour table of a 12-megapixel cloud would take 1 GB.
+    for start in range(0, len(support), _SPACING_CHUNK):
+        dist, _ = tree.query(support[start : start + _SPACING_CHUNK], k=k)
+        spacing[start : start + len(dist)] = dist[:, -1]
+
+    def near(points):
+        d, i = tree.query(points, k=1)
+        return d <= max_spacings * spacing[i]
+
+    keep_v = near(vertices)
+    if rig is not None:
+        h, w = shape
+        z = vertices[:, 2]
+        with np.errstate(invalid="ignore", divide="ignore"):
+            u = rig.focal_px * vertices[:, 0] / z + rig.cx
+            v = rig.focal_px * vertices[:, 1] / z + rig.cy
+        # Pixel centres are at integers: the image covers [-0.5, W - 0.5).
+        keep_v &= (z > 0) & (u >= -0.5) & (u < w - 0.5) & (v >= -0.5) & (v < h - 0.5)
+    keep = keep_v[faces].all(axis=1)
+    keep[keep] = near(vertices[faces[keep]].mean(axis=1))
+    return keep
+
+
 def poisson_mesh(
     cloud: PointCloud,
     poisson_depth: int = 9,
     density_quantile: float = 0.02,
     scale: float = 1.1,
+    trim_spacings: float = 1.5,
+    rig: RectifiedRig | None = None,
+    max_hole_edges: int = 30,
+    max_depth_jump: float = 0.03,
 ) -> TriMesh:
     """Watertight-then-trimmed surface by screened Poisson reconstruction (Open3D).
 
-    The surface is cut back in two ways, because Poisson closes every gap:
-    vertices whose Poisson density (octree support) is below the
-    ``density_quantile`` quantile are removed with their faces, then faces
-    with a vertex outside the cloud's bounding box, enlarged by 5 % of its size
-    on each side, are removed.
+    The surface is cut back, because Poisson closes every gap: vertices whose
+    Poisson density (octree support) is below the ``density_quantile``
+    quantile are removed with their faces; faces with a vertex outside the
+    cloud's bounding box, enlarged on each side by 5 % of its size (at least
+    two median point spacings), are removed; then, with ``trim_spacings > 0``,
+    every face not supported by the points (:func:`supported_faces`): farther
+    than ``trim_spacings`` local point spacings from them, or, with ``rig``,
+    out of the left camera's view.
+    With ``rig`` the small holes grid repair would fill count as supported
+    (:func:`support_points`), so only gaps larger than that stay open: the
+    surface Poisson invents across a depth discontinuity, behind a foreground
+    object or over an unmatched patch is taken out. The density trim alone
+    keeps such surface wherever the octree is deep, that is next to dense
+    points.
 
     Parameters
     ----------
@@ -357,6 +545,19 @@ def poisson_mesh(
         Share of lowest-density vertices removed, in [0, 1).
     scale : float
         Reconstruction cube diameter over the cloud's bounding-cube diameter.
+    trim_spacings : float
+        Largest distance of the kept surface from the points, in local point
+        spacings (a point's distance to its 4th nearest neighbour); 0 keeps
+        every face the first two trims leave.
+    rig : RectifiedRig, optional
+        The rig of the cloud's left camera frame, for the view test and the
+        small holes.
+    max_hole_edges : int
+        Largest hole that counts as supported, in boundary edges of the pixel
+        grid (as for grid repair); used with ``rig``.
+    max_depth_jump : float
+        Largest relative deviation of a hole's surround from a plane for the
+        hole to count as supported; used with ``rig``.
 
     Returns
     -------
@@ -394,6 +595,8 @@ def poisson_mesh(
         raise ValueError(f"poisson_mesh needs at least 4 points, got {len(cloud)}")
     if not 0.0 <= density_quantile < 1.0:
         raise ValueError(f"density_quantile must be in [0, 1), got {density_quantile}")
+    if not trim_spacings >= 0:
+        raise ValueError(f"trim_spacings must be >= 0, got {trim_spacings}")
 
     pcd = o3d.geometry.PointCloud()
     pcd.points = o3d.utility.Vector3dVector(cloud.points)
@@ -412,9 +615,18 @@ def poisson_mesh(
     if density_quantile > 0 and len(dens):
         keep_v &= dens >= np.quantile(dens, density_quantile)
     lo, hi = cloud.points.min(axis=0), cloud.points.max(axis=0)
-    margin = _POISSON_BOX_MARGIN * (hi - lo)
+    spacing = _median_spacing(cloud.points)
+    # Two spacings at least: a flat cloud (a wall seen square-on) has a box of no
+    # depth, and Poisson's vertices scatter about the plane by a fraction of a cell.
+    margin = np.maximum(_POISSON_BOX_MARGIN * (hi - lo), _POISSON_FILLED_SPACINGS * spacing)
     keep_v &= np.all((verts >= lo - margin) & (verts <= hi + margin), axis=1)
     faces = faces[keep_v[faces].all(axis=1)]
+    if trim_spacings > 0 and len(faces):
+        if rig is not None:
+            support, shape = support_points(cloud, rig, max_hole_edges, max_depth_jump)
+        else:
+            support, shape = cloud.points, None
+        faces = faces[supported_faces(verts, faces, support, trim_spacings, rig, shape)]
     used = np.zeros(len(verts), bool)
     used[faces.ravel()] = True
     remap = np.cumsum(used) - 1
@@ -424,7 +636,6 @@ def poisson_mesh(
     dist, nearest = cKDTree(cloud.points).query(verts, k=1)
     conf = cloud.confidence[nearest].copy()
     sigma = cloud.sigma_z[nearest]
-    spacing = _median_spacing(cloud.points)
     filled = (dist > _POISSON_FILLED_SPACINGS * spacing).astype(np.uint8)
     conf[filled == 1] = 0.0
     if len(colors) != len(verts):
