@@ -230,6 +230,20 @@ def grid_triangles(z, valid, cols, rows, limit):
     return code
 
 
+@njit(cache=True)
+def _kept_at_corner(code, r, c, t, k):
+    """Whether pixel ``(r, c)`` is corner ``k`` of a kept triangle ``t``, and that block.
+
+    Corner ``k`` of block ``(br, bc)`` sits at offset ``(dr, dc)``, so pixel
+    ``(r, c)`` is that corner of block ``(r - dr, c - dc)``.
+    """
+    br = r - _TRIANGLE_CORNERS[t, k, 0]
+    bc = c - _TRIANGLE_CORNERS[t, k, 1]
+    if br < 0 or bc < 0 or br >= code.shape[0] or bc >= code.shape[1]:
+        return False, br, bc
+    return (code[br, bc] >> t) & 1 != 0, br, bc
+
+
 @njit(cache=True, parallel=True)
 def grid_vertices(code, z, cols, rows):
     """Vertex ids (-1 where no kept triangle uses the pixel) and summed face normals.
@@ -241,16 +255,12 @@ def grid_vertices(code, z, cols, rows):
     """
     h, w = z.shape
     used = np.zeros((h, w), np.bool_)
-    # A corner of block (r - dr, c - dc) at offset (dr, dc) is pixel (r, c).
     for r in prange(h):
         for c in range(w):
             hit = False
             for t in range(4):
                 for k in range(3):
-                    br = r - _TRIANGLE_CORNERS[t, k, 0]
-                    bc = c - _TRIANGLE_CORNERS[t, k, 1]
-                    if br >= 0 and bc >= 0 and br < h - 1 and bc < w - 1 \
-                            and (code[br, bc] >> t) & 1:
+                    if _kept_at_corner(code, r, c, t, k)[0]:
                         hit = True
             used[r, c] = hit
     row_start = np.zeros(h + 1, np.int64)
@@ -267,10 +277,8 @@ def grid_vertices(code, z, cols, rows):
             nx, ny, nz = np.float32(0), np.float32(0), np.float32(0)
             for t in range(4):
                 for k in range(3):
-                    br = r - _TRIANGLE_CORNERS[t, k, 0]
-                    bc = c - _TRIANGLE_CORNERS[t, k, 1]
-                    if br >= 0 and bc >= 0 and br < h - 1 and bc < w - 1 \
-                            and (code[br, bc] >> t) & 1:
+                    kept, br, bc = _kept_at_corner(code, r, c, t, k)
+                    if kept:
                         ax, ay, az = _triangle_normal(z, cols, rows, br, bc, t)
                         nx += ax
                         ny += ay
