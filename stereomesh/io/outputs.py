@@ -51,7 +51,7 @@ def write_disparity_previews(out_dir: Path, result, report) -> None:
 PREVIEW_FACES = 600_000
 
 
-def write_mesh_preview(out_dir: Path, mesh, report, pair=None) -> None:
+def write_mesh_preview(out_dir: Path, mesh, pair=None) -> None:
     """A shaded render of the mesh from the left camera (``previews/mesh.png``)."""
     from stereomesh.io.previews import render_mesh_png
 
@@ -100,13 +100,9 @@ def write_disparity_files(out_dir: str | Path, result, report, *, previews: bool
     """
     out_dir = Path(out_dir)
     out_dir.mkdir(parents=True, exist_ok=True)
-    t = time.perf_counter()
-    write_disparity_outputs(out_dir, result.disparity, report)
-    seconds = {"maps": time.perf_counter() - t}
+    seconds = {"maps": _timed(write_disparity_outputs, out_dir, result.disparity, report)}
     if previews:
-        t = time.perf_counter()
-        write_disparity_previews(out_dir, result, report)
-        seconds["previews"] = time.perf_counter() - t
+        seconds["previews"] = _timed(write_disparity_previews, out_dir, result, report)
     return seconds
 
 
@@ -144,7 +140,7 @@ def write_outputs(out_dir: str | Path, result, report, *, previews: bool = True,
         if previews and result.mesh is not None and complete:
             # Drawn beside the file writes below: both spend most of their
             # time outside the interpreter (the rasteriser releases it).
-            preview = pool.submit(_timed, write_mesh_preview, out_dir, result.mesh, report,
+            preview = pool.submit(_timed, write_mesh_preview, out_dir, result.mesh,
                                   result.pair)
         if result.cloud is not None and "filter_cloud" in result.figures:
             t = time.perf_counter()
