@@ -30,6 +30,7 @@ import time
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
+from types import SimpleNamespace
 
 import numpy as np
 
@@ -512,6 +513,21 @@ def warm_up_stages(stop_after: str = "repair") -> None:
         return Winners(best, low, high, high * 0.5, high * 0.5, best.copy(), low.copy()), {}
 
     params = Params().with_overrides({"disp_range": "0:16", "speckle_size": 0})
+    last = STAGES.index(stop_after)
+    if last >= STAGES.index("filter_cloud"):
+        # The geometry stages next, from a made-up disparity map: the command's
+        # process reaches the kernels right after its solver itself, so the two
+        # processes compile from opposite ends and meet in the middle.
+        disparity = np.full((48, 64), float(shift), np.float32)
+        disparity[20:23, 30:33] = np.nan  # a small hole for the repair
+        maps = SimpleNamespace(disparity=disparity, confidence=np.ones_like(disparity),
+                               sigma_d=np.full_like(disparity, 0.1))
+        cloud, _ = cloud_from_disparity(pair, maps, params)
+        cloud, _ = clean_cloud(cloud, params)
+        if last >= STAGES.index("surface"):
+            mesh, _ = surface_from_cloud(cloud, params, pair.rig)
+            if last >= STAGES.index("repair"):
+                repair_surface(mesh, params, pair)
     solver, engine._solve = engine._solve, fixed_answer
     try:
         reconstruct(pair, params, stop_after=stop_after)
