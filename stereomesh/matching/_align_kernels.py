@@ -8,36 +8,39 @@ unchecked; :func:`stereomesh.matching.refine.align_subpixel` validates them.
 from __future__ import annotations
 
 import numpy as np
-from numba import njit, prange
+from llvmlite import ir
+from numba import njit, prange, types
+from numba.extending import intrinsic
+
+from stereomesh.matching._simd import _element_pointer
+
+
+@intrinsic
+def _copy4(typingctx, src, si, dst, di):
+    """Copy ``src[si : si + 4]`` to ``dst[di : di + 4]`` of float32 arrays as one 16-byte move.
+
+    The four taps of a sample sit at a data-dependent place in the row, a
+    gather the loop vectoriser leaves scalar; one unaligned vector move a
+    sample keeps that scalar loop short. The caller keeps both ranges inside
+    the arrays.
+    """
+    if not all(isinstance(a, types.Array) and a.dtype == types.float32 for a in (src, dst)):
+        return None
+    sig = types.void(src, types.intp, dst, types.intp)
+
+    def codegen(context, builder, signature, args):
+        vec = ir.VectorType(ir.FloatType(), 4)
+        a = _element_pointer(context, builder, signature.args[0], args[0], args[1])
+        b = _element_pointer(context, builder, signature.args[2], args[2], args[3])
+        value = builder.load(builder.bitcast(a, vec.as_pointer()), align=4)
+        builder.store(value, builder.bitcast(b, vec.as_pointer()), align=4)
+        return context.get_dummy_value()
+
+    return sig, codegen
+
 
 _STOP = 0.005  # pixels: a Gauss-Newton step below this ends the fit
 _CENTRE = np.float32(128.0)  # intensities are centred so float32 sums keep their digits
-
-
-@njit(cache=True, parallel=True)
-def cubic_table(image):
-    """Polynomial coefficients ``(c0, c1, c2, c3)`` of each row interval ``[i, i + 1)``.
-
-    The Keys (a = -1/2) cubic interpolant on ``[i, i + 1)`` is
-    ``((c3 t + c2) t + c1) t + c0`` with ``t`` the fraction past ``i``, from the
-    samples ``i - 1 .. i + 2``; intervals without four samples are zero (never
-    read). Cubic rather than linear interpolation because a linear
-    interpolant's smoothing varies with the fractional position, which pulls
-    the fit toward whole pixels. Intensities are centred on 128.
-    """
-    H, W = image.shape
-    table = np.zeros((H, W, 4), np.float32)
-    for y in prange(H):
-        for i in range(1, W - 2):
-            a = image[y, i - 1] - _CENTRE
-            b = image[y, i] - _CENTRE
-            c = image[y, i + 1] - _CENTRE
-            d = image[y, i + 2] - _CENTRE
-            table[y, i, 0] = b
-            table[y, i, 1] = 0.5 * (c - a)
-            table[y, i, 2] = a - 2.5 * b + 2.0 * c - 0.5 * d
-            table[y, i, 3] = -0.5 * a + 1.5 * b - 1.5 * c + 0.5 * d
-    return table
 
 
 @njit(cache=True, inline="always")
@@ -59,17 +62,18 @@ def _solve3(m00, m01, m02, m11, m12, m22, r0, r1, r2):
 
 
 _FAST = {"reassoc", "contract", "nsz", "arcp"}  # not "nnan": the support test relies on NaN
-_BLOCK = 128  # pixels of a row fitted together; their work rows (16 x 512 bytes) stay in L1
+_BLOCK = 128  # pixels of a row fitted together; their work rows (23 x 512 bytes) stay in L1
 # Rows of a block's float32 work array, ``_BLOCK`` values each: the ten window sums, then
 # the per-pixel inputs of the step and its per-sample temporaries. One array, so that the
 # vectoriser sees constant distances between them instead of pointers that might overlap.
-_D0, _SHIFT, _SLOPE_A, _SLOPE_B, _T, _W = (r * _BLOCK for r in (10, 11, 12, 13, 14, 15))
-_WORK_ROWS = 16
+_D0, _SHIFT, _SLOPE_A, _SLOPE_B, _T, _W, _BASE, _SPACING, _ROW_SUMS = (
+    r * _BLOCK for r in range(10, 19))
+_WORK_ROWS = 23
 _U = np.uint64  # unsigned indices: numba's wraparound of negative ones defeats vectorising
 
 
 @njit(cache=True, parallel=True)
-def align_subpixel_kernel(left, table, init, rx, ry, tol, iterations, max_shift):
+def align_subpixel_kernel(left, right, init, rx, ry, tol, iterations, max_shift):
     """Disparity, its Gauss-Newton standard deviation and a converged flag per pixel.
 
     For every finite ``init`` pixel: the slopes of the disparity plane from
@@ -77,36 +81,39 @@ def align_subpixel_kernel(left, table, init, rx, ry, tol, iterations, max_shift)
     offset, matching the left window against the right image sampled (cubic
     interpolation along the row) at ``x - d(i, j)`` with gain and offset. NaN
     pixels stay NaN; pixels whose fit fails keep ``init`` with a NaN sigma.
-    ``table`` is :func:`cubic_table` of the right image.
+
+    The interpolant is the Keys (a = -1/2) cubic, rather than a linear one whose
+    smoothing varies with the fractional position and pulls the fit toward
+    whole pixels. Its four taps are read as one 16-byte copy and turned into
+    polynomial coefficients in the vectorised loop, so no table of
+    coefficients (16 bytes a pixel, built per call) is needed.
     """
     H, W = init.shape
     out = np.empty((H, W), np.float32)
     sigma = np.empty((H, W), np.float32)
     converged = np.zeros((H, W), np.bool_)
-    # One complex128 per pixel: a sample's four coefficients move as one 16-byte copy.
-    packed = table.reshape(H * W * 4).view(np.complex128).reshape(H, W)
     for y in prange(H):
         # prange's index is unsigned: ``-y`` in the window bounds would wrap.
-        _align_row(left, packed, init, np.int64(y), rx, ry, tol, iterations, max_shift,
+        _align_row(left, right, init, np.int64(y), rx, ry, tol, iterations, max_shift,
                    out, sigma, converged)
     return out, sigma, converged
 
 
 @njit(cache=True, fastmath=_FAST)
-def _align_row(left, table, init, y, rx, ry, tol, iterations, max_shift, out, sigma, converged):
+def _align_row(left, right, init, y, rx, ry, tol, iterations, max_shift, out, sigma, converged):
     """One row of ``align_subpixel_kernel``, in blocks of ``_BLOCK`` pixels.
 
     The window sums of a block's pixels are accumulated one window sample at a
     time with the innermost loop over the pixels: their left and support reads
     are then neighbours in memory and the loop vectorises, which a loop over
-    one pixel's 9-sample window row does not. ``table`` is flat per row.
+    one pixel's 9-sample window row does not.
     """
     H, W = init.shape
     tol32 = np.float32(tol)
     j0, j1 = max(-ry, -y), min(ry, H - 1 - y)
     work = np.zeros(_WORK_ROWS * _BLOCK, np.float32)
-    taps = np.zeros(_BLOCK, np.int64)
-    coef = np.zeros(_BLOCK, np.complex128)
+    taps = np.zeros(_BLOCK, np.int32)
+    taps4 = np.zeros(4 * _BLOCK, np.float32)
     delta = np.empty(_BLOCK, np.float64)
     var = np.empty(_BLOCK, np.float64)
     state = np.empty(_BLOCK, np.int8)  # 0 fitting, 1 converged, 2 out of steps, -1 failed
@@ -128,7 +135,7 @@ def _align_row(left, table, init, y, rx, ry, tol, iterations, max_shift, out, si
             for q in range(nb):
                 work[_SLOPE_A + q], work[_SLOPE_B + q] = _plane_slopes(work, q)
             for _ in range(iterations):
-                _step_sums(left, table, init, y, x0, nb, rx, j0, j1, tol32, work, taps, coef)
+                _step_sums(left, right, init, y, x0, nb, rx, j0, j1, tol32, work, taps, taps4)
                 fitting = 0
                 for q in range(nb):
                     if state[q] != 0:
@@ -164,12 +171,15 @@ def _plane_sums(init, y, x0, nb, rx, j0, j1, tol, work):
     Neighbours within ``tol`` of the centre's disparity are taken as the same
     surface. The integer sums are exact in float32 and the disparity
     differences are at most ``tol``, so float32 loses nothing the solve keeps.
+    The sums over a window row come first (five of them, the factors in ``j``
+    are constant along it), then the nine of the window.
     """
     W = init.shape[1]
     work[: 9 * _BLOCK] = 0.0
     for j in range(j0, j1 + 1):
         row = init[y + j]
         fj = np.float32(j)
+        work[_ROW_SUMS : _ROW_SUMS + 5 * _BLOCK] = 0.0
         for i in range(-rx, rx + 1):
             fi = np.float32(i)
             # Pixels whose sample ``x + i`` lies outside the row skip it.
@@ -178,15 +188,24 @@ def _plane_sums(init, y, x0, nb, rx, j0, j1, tol, work):
                 same = abs(dq) <= tol  # also false for NaN
                 w = np.float32(1.0) if same else np.float32(0.0)
                 dq = dq if same else np.float32(0.0)
-                work[_U(q)] += w
-                work[_U(_BLOCK + q)] += w * fi
-                work[_U(2 * _BLOCK + q)] += w * fj
-                work[_U(3 * _BLOCK + q)] += w * (fi * fi)
-                work[_U(4 * _BLOCK + q)] += w * (fi * fj)
-                work[_U(5 * _BLOCK + q)] += w * (fj * fj)
-                work[_U(6 * _BLOCK + q)] += dq
-                work[_U(7 * _BLOCK + q)] += dq * fi
-                work[_U(8 * _BLOCK + q)] += dq * fj
+                work[_U(_ROW_SUMS + q)] += w
+                work[_U(_ROW_SUMS + _BLOCK + q)] += w * fi
+                work[_U(_ROW_SUMS + 2 * _BLOCK + q)] += w * (fi * fi)
+                work[_U(_ROW_SUMS + 3 * _BLOCK + q)] += dq
+                work[_U(_ROW_SUMS + 4 * _BLOCK + q)] += dq * fi
+        for q in range(nb):
+            n = work[_U(_ROW_SUMS + q)]
+            si = work[_U(_ROW_SUMS + _BLOCK + q)]
+            sd = work[_U(_ROW_SUMS + 3 * _BLOCK + q)]
+            work[_U(q)] += n
+            work[_U(_BLOCK + q)] += si
+            work[_U(2 * _BLOCK + q)] += n * fj
+            work[_U(3 * _BLOCK + q)] += work[_U(_ROW_SUMS + 2 * _BLOCK + q)]
+            work[_U(4 * _BLOCK + q)] += si * fj
+            work[_U(5 * _BLOCK + q)] += n * (fj * fj)
+            work[_U(6 * _BLOCK + q)] += sd
+            work[_U(7 * _BLOCK + q)] += work[_U(_ROW_SUMS + 4 * _BLOCK + q)]
+            work[_U(8 * _BLOCK + q)] += sd * fj
 
 
 @njit(cache=True, inline="always")
@@ -207,47 +226,55 @@ def _plane_slopes(work, q):
 
 
 @njit(cache=True, fastmath=_FAST)
-def _step_sums(left, table, init, y, x0, nb, rx, j0, j1, tol, work, taps, coef):
+def _step_sums(left, right, init, y, x0, nb, rx, j0, j1, tol, work, taps, taps4):
     """Normal-equation sums of one Gauss-Newton step of pixels ``x0 .. x0 + nb`` (rows 0-9).
 
-    Three loops per window sample: sample positions (vectorised), the table
-    reads at them (a gather, which stops the vectoriser, so it is kept apart and
-    only copies), then the interpolation and the sums (vectorised).
+    Three loops per window sample: the sample positions (vectorised), the four
+    right-image taps at each (a gather, kept apart because it stops the
+    vectoriser, and only copying), then the Keys cubic and the sums
+    (vectorised). Within a window row the position is ``base + i (1 - a)``.
     """
     W = init.shape[1]
     last = np.float32(W - 2.0)
+    top = np.float32(W - 3.0)
     work[: 10 * _BLOCK] = 0.0
-    fcoef = coef.view(np.float32)
+    for q in range(nb):
+        work[_U(_SPACING + q)] = np.float32(1.0) - work[_U(_SLOPE_A + q)]
     for j in range(j0, j1 + 1):
         yy = y + j
         srow = init[yy]
         lrow = left[yy]
-        trow = table[yy]
+        rrow = right[yy]
         fj = np.float32(j)
+        for q in range(nb):
+            work[_U(_BASE + q)] = np.float32(x0 + q) - (
+                work[_U(_D0 + q)] + work[_U(_SHIFT + q)] + work[_U(_SLOPE_B + q)] * fj)
         for i in range(-rx, rx + 1):
             fi = np.float32(i)
             qa, qb = max(0, -i - x0), min(nb, W - i - x0)
             for q in range(qa, qb):
-                xx = x0 + q + i
-                d0 = work[_U(_D0 + q)]
-                xr = np.float32(xx) - (d0 + work[_U(_SHIFT + q)] + work[_U(_SLOPE_B + q)] * fj
-                                       + work[_U(_SLOPE_A + q)] * fi)
+                xr = work[_U(_BASE + q)] + fi * work[_U(_SPACING + q)]
                 # Weights 0 or 1 instead of branches keep the loop free of jumps.
-                inside = ((abs(srow[_U(xx)] - d0) <= tol) & (xr >= np.float32(1.0))
-                          & (xr < last))
-                k = min(max(int(xr), 1), W - 3)
-                taps[_U(q)] = k
+                inside = ((abs(srow[_U(x0 + q + i)] - work[_U(_D0 + q)]) <= tol)
+                          & (xr >= np.float32(1.0)) & (xr < last))
+                k = np.int32(min(max(xr, np.float32(1.0)), top))
+                taps[_U(q)] = k - np.int32(1)
                 work[_U(_T + q)] = xr - np.float32(k)
                 work[_U(_W + q)] = np.float32(1.0) if inside else np.float32(0.0)
             for q in range(qa, qb):
-                coef[_U(q)] = trow[_U(taps[_U(q)])]
+                _copy4(rrow, taps[_U(q)], taps4, 4 * q)
             for q in range(qa, qb):
                 t = work[_U(_T + q)]
                 w = work[_U(_W + q)]
-                c0 = fcoef[_U(4 * q)]
-                c1 = fcoef[_U(4 * q + 1)]
-                c2 = fcoef[_U(4 * q + 2)]
-                c3 = fcoef[_U(4 * q + 3)]
+                p0 = taps4[_U(4 * q)]
+                p1 = taps4[_U(4 * q + 1)]
+                p2 = taps4[_U(4 * q + 2)]
+                p3 = taps4[_U(4 * q + 3)]
+                # Keys (a = -1/2) cubic on [p1, p2); the taps' centring cancels but in c0.
+                c0 = p1 - _CENTRE
+                c1 = np.float32(0.5) * (p2 - p0)
+                c2 = p0 - np.float32(2.5) * p1 + np.float32(2.0) * p2 - np.float32(0.5) * p3
+                c3 = np.float32(0.5) * (p3 - p0) + np.float32(1.5) * (p1 - p2)
                 r = (((c3 * t + c2) * t + c1) * t + c0) * w
                 g = ((np.float32(3.0) * c3 * t + np.float32(2.0) * c2) * t + c1) * w
                 lv = (lrow[_U(x0 + q + i)] - _CENTRE) * w
