@@ -111,12 +111,14 @@ def test_numba_kernel_equals_the_numpy_reference_across_pixel_blocks():
     left += rng.normal(0, 2.0, left.shape).astype(np.float32)
     start = (np.rint(truth) + rng.integers(-1, 2, truth.shape) * 0.3).astype(np.float32)
     start[4, _BLOCK - 2 : _BLOCK + 2] = np.nan
-    fast = align_subpixel(left, right, start)
-    slow = align_subpixel_reference(left, right, start)
-    np.testing.assert_array_equal(np.isnan(fast[1]), np.isnan(slow[1]))
-    np.testing.assert_allclose(fast[0], slow[0], atol=2e-3, equal_nan=True)
-    np.testing.assert_allclose(fast[1], slow[1], rtol=2e-2, atol=1e-4, equal_nan=True)
-    assert (fast[2] == slow[2]).mean() > 0.97
+    # The default two passes, and one pass of up to four steps (early stops per pixel).
+    for kw in ({}, {"iterations": 4, "passes": 1}):
+        fast = align_subpixel(left, right, start, **kw)
+        slow = align_subpixel_reference(left, right, start, **kw)
+        np.testing.assert_array_equal(np.isnan(fast[1]), np.isnan(slow[1]))
+        np.testing.assert_allclose(fast[0], slow[0], atol=2e-3, equal_nan=True)
+        np.testing.assert_allclose(fast[1], slow[1], rtol=2e-2, atol=1e-4, equal_nan=True)
+        assert (fast[2] == slow[2]).mean() > 0.97
 
 
 def test_alignment_sigma_edges_equal_scipy_filters():

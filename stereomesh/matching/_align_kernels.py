@@ -108,10 +108,10 @@ def align_subpixel_kernel(left, right, init, rx, ry, tol, iterations, max_shift)
 def _align_row(left, right, init, y, rx, ry, tol, iterations, max_shift, out, sigma, converged):
     """One row of ``align_subpixel_kernel``, in blocks of ``_BLOCK`` pixels.
 
-    The window sums of a block's pixels are accumulated one window sample at a
-    time with the innermost loop over the pixels: their left and support reads
-    are then neighbours in memory and the loop vectorises, which a loop over
-    one pixel's 9-sample window row does not.
+    The window sums of a block's pixels are accumulated a few window samples
+    at a time with the innermost loop over the pixels: their left and support
+    reads are then neighbours in memory and the loop vectorises, which a loop
+    over one pixel's 9-sample window row does not.
     """
     H, W = init.shape
     tol32 = np.float32(tol)
@@ -122,7 +122,7 @@ def _align_row(left, right, init, y, rx, ry, tol, iterations, max_shift, out, si
     delta = np.empty(_BLOCK, np.float64)
     var = np.empty(_BLOCK, np.float64)
     fits = np.empty(3 * _BLOCK, np.float64)
-    state = np.empty(_BLOCK, np.int8)  # 0 fitting, 1 converged, 2 out of steps, -1 failed
+    state = np.empty(_BLOCK, np.int8)  # 0 fitting, 1 converged, -1 failed or NaN
     x0 = 0
     while x0 < W:
         # Blocks start and end on finite pixels: NaN runs (occlusions, the
@@ -135,7 +135,6 @@ def _align_row(left, right, init, y, rx, ry, tol, iterations, max_shift, out, si
         nb = min(_BLOCK, W - x0)
         while not init[y, x0 + nb - 1] == init[y, x0 + nb - 1]:
             nb -= 1
-        fitting = 0
         for q in range(nb):
             v = init[y, x0 + q]
             finite = v == v
@@ -143,33 +142,31 @@ def _align_row(left, right, init, y, rx, ry, tol, iterations, max_shift, out, si
             work[_D0 + q] = v if finite else np.float32(0.0)
             work[_SHIFT + q] = 0.0
             state[q] = 0 if finite else -1
-            fitting += finite
             delta[q] = 0.0
             var[q] = np.nan
-        if fitting:  # always, since the block starts on a finite pixel
-            _plane_sums(init, y, x0, nb, rx, j0, j1, tol32, work)
-            _plane_slopes(work, nb)
-            for _ in range(iterations):
-                _step_sums(left, right, init, y, x0, nb, rx, j0, j1, tol32, work, taps, taps4)
-                _steps(work, nb, fits)
-                fitting = 0
-                for q in range(nb):
-                    if state[q] != 0:
-                        continue
-                    ok = fits[2 * _BLOCK + q] == 1.0
-                    step = fits[q]
-                    delta[q] += step
-                    var[q] = fits[_BLOCK + q]
-                    work[_SHIFT + q] = np.float32(delta[q])
-                    if not ok or not abs(delta[q]) <= max_shift:
-                        state[q] = -1
-                        work[_SHIFT + q] = 0.0  # keeps a failed pixel's samples in the row
-                    elif abs(step) < _STOP:
-                        state[q] = 1
-                    else:
-                        fitting += 1
-                if fitting == 0:
-                    break
+        _plane_sums(init, y, x0, nb, rx, j0, j1, tol32, work)
+        _plane_slopes(work, nb)
+        for _ in range(iterations):
+            _step_sums(left, right, init, y, x0, nb, rx, j0, j1, tol32, work, taps, taps4)
+            _steps(work, nb, fits)
+            fitting = 0
+            for q in range(nb):
+                if state[q] != 0:
+                    continue
+                ok = fits[2 * _BLOCK + q] == 1.0
+                step = fits[q]
+                delta[q] += step
+                var[q] = fits[_BLOCK + q]
+                work[_SHIFT + q] = np.float32(delta[q])
+                if not ok or not abs(delta[q]) <= max_shift:
+                    state[q] = -1
+                    work[_SHIFT + q] = 0.0  # keeps a failed pixel's samples in the row
+                elif abs(step) < _STOP:
+                    state[q] = 1
+                else:
+                    fitting += 1
+            if fitting == 0:
+                break
         for q in range(nb):
             x = x0 + q
             if state[q] < 0:

@@ -176,7 +176,7 @@ def _passes(fit, disparity, iterations, passes):
     for _ in range(passes - 1):
         d, s, converged = fit(d, 1)
         # A pixel whose later fit failed keeps the earlier fit and its sigma.
-        sigma = np.where(np.isnan(s), sigma, s).astype(np.float32)
+        sigma = np.where(np.isnan(s), sigma, s)
     return d, sigma, converged
 
 
