@@ -99,10 +99,48 @@ def test_numba_kernel_equals_the_numpy_reference():
     np.testing.assert_array_equal(np.isnan(fast[1]), np.isnan(slow[1]))
     np.testing.assert_allclose(fast[1], slow[1], rtol=2e-2, atol=1e-4, equal_nan=True)
     assert (fast[2] == slow[2]).mean() > 0.97  # the 0.005 px stop may fall either side
-    # Solving in strips of rows changes nothing.
-    strips = align_subpixel(left, right, start, window=(7, 5), strip_rows=3)
-    for whole, piece in zip(fast, strips, strict=True):
-        np.testing.assert_array_equal(whole, piece)
+
+
+def test_numba_kernel_equals_the_numpy_reference_across_pixel_blocks():
+    # The kernel fits a row's pixels in blocks (_align_kernels._BLOCK): a row
+    # wider than two blocks, with NaN starts across a block edge and the default window.
+    from stereomesh.matching._align_kernels import _BLOCK
+
+    rng = np.random.default_rng(7)
+    left, right, truth = _slanted_pair(10, 2 * _BLOCK + 44, 12.4, -0.03, 0.05, seed=7)
+    left += rng.normal(0, 2.0, left.shape).astype(np.float32)
+    start = (np.rint(truth) + rng.integers(-1, 2, truth.shape) * 0.3).astype(np.float32)
+    start[4, _BLOCK - 2 : _BLOCK + 2] = np.nan
+    # The default two passes, and one pass of up to four steps (early stops per pixel).
+    for kw in ({}, {"iterations": 4, "passes": 1}):
+        fast = align_subpixel(left, right, start, **kw)
+        slow = align_subpixel_reference(left, right, start, **kw)
+        np.testing.assert_array_equal(np.isnan(fast[1]), np.isnan(slow[1]))
+        np.testing.assert_allclose(fast[0], slow[0], atol=2e-3, equal_nan=True)
+        np.testing.assert_allclose(fast[1], slow[1], rtol=2e-2, atol=1e-4, equal_nan=True)
+        assert (fast[2] == slow[2]).mean() > 0.97
+
+
+def test_alignment_sigma_edges_equal_scipy_filters():
+    # The edge test takes the 5 x 5 spread with OpenCV; scipy's maximum and
+    # minimum filters are the reference, borders included.
+    from scipy import ndimage
+
+    from stereomesh.matching import disparity as engine
+
+    rng = np.random.default_rng(11)
+    disp = np.repeat(rng.uniform(5, 9, (6, 1)), 7, axis=1).repeat(6, axis=0)[:, :40]
+    disp = (disp + rng.normal(0, 0.2, disp.shape)).astype(np.float32)
+    disp[rng.random(disp.shape) < 0.05] = np.nan
+    fit = rng.uniform(0.005, 0.05, disp.shape).astype(np.float32)
+    fit[rng.random(disp.shape) < 0.05] = np.nan
+    filled = np.where(np.isfinite(disp), disp, np.float32(-1e4))
+    edge = (ndimage.maximum_filter(filled, 5) - ndimage.minimum_filter(filled, 5)) > 1.0
+    expected = np.hypot(engine.ALIGNMENT_SIGMA_SCALE * fit, engine.ALIGNMENT_SIGMA_FLOOR)
+    expected = np.where(edge, engine.ALIGNMENT_EDGE_FACTOR * expected, expected)
+    expected[np.isnan(fit)] = engine.ALIGNMENT_SIGMA_FAILED
+    assert 0.1 < edge.mean() < 0.9
+    np.testing.assert_allclose(engine.alignment_sigma(fit, disp), expected, rtol=1e-6)
 
 
 def test_alignment_refuses_even_windows():

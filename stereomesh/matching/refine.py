@@ -97,7 +97,6 @@ def align_subpixel(
     iterations: int = 1,
     max_shift: float = 1.0,
     passes: int = 2,
-    strip_rows: int = 256,
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Sub-pixel disparity by local image alignment on a slanted window.
 
@@ -136,8 +135,6 @@ def align_subpixel(
         disparities, and makes one Gauss–Newton step: on the oblique demo view
         a second pass takes the mean error from 0.066 to 0.056 px and the
         fractional histogram's peak from 1.41 to 1.23 times its mean.
-    strip_rows : int
-        Rows solved at a time (bounds the work memory; results do not depend on it).
 
     Returns
     -------
@@ -164,24 +161,11 @@ def align_subpixel(
     from stereomesh.matching import _align_kernels
 
     left, right, disparity, rx, ry = _check_align(left, right, disparity, window)
+
     def fit(start, n):
-        # Strips of rows, each with the window's reach of rows around it, so the
-        # interpolation table (16 bytes a pixel) never covers the whole image:
-        # the same results, a few MB instead of 190 MB on a 12 MP image.
-        h = start.shape[0]
-        out = np.empty_like(start)
-        sigma = np.empty_like(start)
-        converged = np.empty(start.shape, bool)
-        for a in range(0, h, strip_rows):
-            b = min(h, a + strip_rows)
-            a0, b0 = max(0, a - 2 * ry), min(h, b + 2 * ry)  # plane fit + window rows
-            table = _align_kernels.cubic_table(right[a0:b0])
-            part = _align_kernels.align_subpixel_kernel(
-                left[a0:b0], table, start[a0:b0], rx, ry, float(support_tol), n,
-                float(max_shift))
-            for whole, piece in zip((out, sigma, converged), part, strict=True):
-                whole[a:b] = piece[a - a0 : b - a0]
-        return out, sigma, converged
+        # The kernel's work memory is a few kB a row: the whole image at once.
+        return _align_kernels.align_subpixel_kernel(
+            left, right, start, rx, ry, float(support_tol), n, float(max_shift))
 
     return _passes(fit, disparity, int(iterations), int(passes))
 
@@ -192,7 +176,7 @@ def _passes(fit, disparity, iterations, passes):
     for _ in range(passes - 1):
         d, s, converged = fit(d, 1)
         # A pixel whose later fit failed keeps the earlier fit and its sigma.
-        sigma = np.where(np.isnan(s), sigma, s).astype(np.float32)
+        sigma = np.where(np.isnan(s), sigma, s)
     return d, sigma, converged
 
 
