@@ -672,10 +672,10 @@ def test_grid_outlier_removal_matches_its_reference_and_open3d():
                                   grid_outlier_keep_reference(half, 8, 2.0))
 
 
-@pytest.mark.parametrize("k", [1, 3, 20, 24, 30])
-def test_mean_neighbour_distance_matches_brute_force(k):
+@pytest.mark.parametrize("k, radius", [(1, 2), (3, 2), (20, 2), (24, 2), (30, 2), (20, 3)])
+def test_mean_neighbour_distance_matches_brute_force(k, radius):
     # Brute force: every window candidate's distance, sorted, the k smallest averaged.
-    # k = 20 of 24 takes the "all minus the largest" branch, 1 and 3 the other.
+    # k >= 24 keeps every candidate of a 5 x 5 window; 20 in 7 x 7 is the default.
     from stereomesh.geometry._grid_kernels import mean_neighbour_distance
     from stereomesh.geometry.organised import pixel_index
 
@@ -683,11 +683,11 @@ def test_mean_neighbour_distance_matches_brute_force(k):
     keep = np.random.default_rng(2).random(len(pts)) < 0.8  # empty pixels too
     pc = _cloud(pts[keep], pixels=pixels[keep])
     index = pixel_index(pc)
-    got = mean_neighbour_distance(pc.points, pc.pixels.astype(np.int64), index, k, 2)
+    got = mean_neighbour_distance(pc.points, pc.pixels.astype(np.int64), index, k, radius)
     h, w = index.shape
     for i in np.random.default_rng(3).choice(len(pc), 300, replace=False):
         col, row = pc.pixels[i]
-        win = index[max(0, row - 2):row + 3, max(0, col - 2):col + 3]
+        win = index[max(0, row - radius):row + radius + 1, max(0, col - radius):col + radius + 1]
         others = win[(win >= 0) & (win != i)]
         d = np.sort(np.linalg.norm(pc.points[others] - pc.points[i], axis=1))[:k]
         want = d.mean() if len(d) else np.inf

@@ -78,7 +78,7 @@ def grid_outlier_keep(cloud: PointCloud, neighbors: int = 20, std_ratio: float =
     neighbours; points whose mean exceeds the cloud's mean of means by more than
     ``std_ratio`` standard deviations are outliers. The candidates are the points
     of the smallest square pixel window holding ``neighbors`` other pixels
-    (5 × 5 for 20): on a surface seen in an image, its nearest points in space.
+    (7 × 7 for 20): on a surface seen in an image, its nearest points in space.
     A point with no neighbour in its window is an outlier.
 
     Parameters
