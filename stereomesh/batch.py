@@ -369,7 +369,12 @@ def _local_worker(conn, threads: int, params_dict: dict) -> None:
     # Before numba loads: each worker uses its share of the cores, no more.
     os.environ["NUMBA_NUM_THREADS"] = str(threads)
     os.environ.setdefault("OMP_NUM_THREADS", str(threads))
-    os.environ.setdefault("NUMBA_THREADING_LAYER_PRIORITY", "omp tbb workqueue")
+    # The command's own settings (threading layer, small pages): a worker is our process,
+    # and each pair's arrays are fresh memory touched about once, as in one command
+    # (benchmarks/batch.py: 57-75 against 50-70 pairs a minute with numpy's huge pages).
+    from stereomesh.cli import configure_process
+
+    configure_process()
     signal.signal(signal.SIGINT, signal.SIG_IGN)  # the parent decides what an interrupt stops
     _limit_opencv_threads(threads)
     warm_worker(params_from_dict(params_dict))
