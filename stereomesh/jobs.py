@@ -89,7 +89,7 @@ def run_job(
     """
     from concurrent.futures import ThreadPoolExecutor
 
-    from stereomesh.io.outputs import write_disparity_files, write_outputs
+    from stereomesh.io.outputs import write_cloud_file, write_disparity_files, write_outputs
     from stereomesh.report import Report
 
     out_dir = prepare_out_dir(out_dir)
@@ -97,20 +97,24 @@ def run_job(
         raise ValueError(f"stop_after must be one of {STAGES}")
     pair, records = read_while_warming(inputs, calib, params, layout=layout, swap=swap)
     report = Report(command, params, records)
-    # The disparity files and their previews are written by a second thread while
-    # the geometry stages run: PNG encoding and file writes release the
-    # interpreter, and the geometry has single-threaded stretches to fill.
+    # The disparity files and their previews, then the cleaned cloud, are written by
+    # a second thread while the later stages run: PNG encoding and file writes
+    # release the interpreter, and the geometry has single-threaded stretches to fill.
     early = {}
 
     def stage_done(stage, partial):
-        if stage == "disparity" and stop_after != "disparity":
+        if stage == stop_after:
+            return
+        if stage == "disparity":
             early["disparity"] = writer.submit(write_disparity_files, out_dir, partial, report,
                                                previews=previews)
+        elif stage == "filter_cloud":
+            early["cloud"] = writer.submit(write_cloud_file, out_dir, partial, report)
 
-    def written():
+    def written(part):
         # A failed early write is simply redone (and fails visibly) by write_outputs.
         try:
-            return early["disparity"].result() if "disparity" in early else None
+            return early[part].result() if part in early else None
         except Exception:
             return None
 
@@ -124,14 +128,16 @@ def run_job(
             report.fail(failed.stage, cause)
             try:
                 write_outputs(out_dir, failed.partial, report, previews=previews,
-                              disparity_written=written())
+                              disparity_written=written("disparity"),
+                              cloud_written=written("cloud"))
             finally:
                 report.finish(out_dir / "report.json", status="failed")
             raise cause from None
         report.add_reconstruction(result)
         try:
             write_outputs(out_dir, result, report, previews=previews,
-                          disparity_written=written())
+                          disparity_written=written("disparity"),
+                          cloud_written=written("cloud"))
         except Exception as exc:
             report.fail("export", exc)
             report.finish(out_dir / "report.json", status="failed")

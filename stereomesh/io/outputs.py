@@ -106,8 +106,24 @@ def write_disparity_files(out_dir: str | Path, result, report, *, previews: bool
     return seconds
 
 
+def write_cloud_file(out_dir: str | Path, result, report) -> float:
+    """``cloud.ply`` of a reconstruction past its cloud filter; seconds taken.
+
+    The cleaned cloud is final once that stage ends, so a caller can write it
+    while the surface stages run; :func:`write_outputs` then skips it.
+    """
+    from stereomesh.io.ply import write_cloud_ply
+
+    t = time.perf_counter()
+    path = Path(out_dir) / "cloud.ply"
+    write_cloud_ply(path, result.cloud, scale=result.scale)
+    report.output("cloud", path)
+    return time.perf_counter() - t
+
+
 def write_outputs(out_dir: str | Path, result, report, *, previews: bool = True,
-                  disparity_written: dict[str, float] | None = None) -> None:
+                  disparity_written: dict[str, float] | None = None,
+                  cloud_written: float | None = None) -> None:
     """Write everything a (possibly partial) reconstruction holds into ``out_dir``.
 
     Parameters
@@ -123,8 +139,11 @@ def write_outputs(out_dir: str | Path, result, report, *, previews: bool = True,
     disparity_written : dict, optional
         What an earlier :func:`write_disparity_files` call returned: those files
         are already written and are not written again.
+    cloud_written : float, optional
+        What an earlier :func:`write_cloud_file` call returned: ``cloud.ply``
+        is already written.
     """
-    from stereomesh.io.ply import write_cloud_ply, write_mesh_ply
+    from stereomesh.io.ply import write_mesh_ply
 
     out_dir = Path(out_dir)
     out_dir.mkdir(parents=True, exist_ok=True)
@@ -142,11 +161,10 @@ def write_outputs(out_dir: str | Path, result, report, *, previews: bool = True,
             # time outside the interpreter (the rasteriser releases it).
             preview = pool.submit(_timed, write_mesh_preview, out_dir, result.mesh,
                                   result.pair)
-        if result.cloud is not None and "filter_cloud" in result.figures:
-            t = time.perf_counter()
-            write_cloud_ply(out_dir / "cloud.ply", result.cloud, scale=result.scale)
-            report.output("cloud", out_dir / "cloud.ply")
-            seconds["cloud"] = time.perf_counter() - t
+        if cloud_written is not None:
+            seconds["cloud"] = cloud_written
+        elif result.cloud is not None and "filter_cloud" in result.figures:
+            seconds["cloud"] = write_cloud_file(out_dir, result, report)
         if result.mesh is not None and complete:
             t = time.perf_counter()
             write_mesh_ply(out_dir / "mesh.ply", result.mesh, scale=result.scale)
