@@ -6,6 +6,8 @@ names, the demo's search range from its ``params.toml``), one run of each:
 - ``stereomesh batch --workers 1`` (one worker with every core's numba thread)
   and ``--workers 2`` (two workers, one numba thread each, as the batch sets
   them): whole-command wall time, pairs per minute, the ratio (goal >= 1.7);
+  and ``--workers 1 --threads 1``, so that the scaling of the workers alone
+  shows apart from that of the kernels' threads;
 - per pair, in this process with the kernels loaded and one solver
   ``Workspace`` reused (a warm worker), ``compute_disparity`` against OpenCV
   StereoSGBM MODE_SGBM (the disparity benchmark's settings, same range) on the
@@ -120,6 +122,7 @@ def main(argv=None):
     n = args.pairs
     t1 = run_batch(src, tmp / "w1", "--workers", "1", *config)
     t2 = run_batch(src, tmp / "w2", "--workers", "2", *config)
+    t11 = run_batch(src, tmp / "w11", "--workers", "1", "--threads", "1", *config)
     stage = statistics.median(r["stages"]["disparity"]["seconds"] for r in reports(tmp / "w1"))
     stage2 = statistics.median(r["stages"]["disparity"]["seconds"] for r in reports(tmp / "w2"))
     ours, cv = warm_disparity_against_opencv(args.rounds)
@@ -136,6 +139,9 @@ def main(argv=None):
     b1, b2 = busy_seconds(tmp / "w1"), busy_seconds(tmp / "w2")
     print(f"  once warm (busiest worker's pair times, start-up excluded): {60 * n / b1:.1f} "
           f"against {60 * n / b2:.1f} pairs/min, {b1 / b2:.2f} x")
+    # How the workers themselves scale: one worker on one thread against two of them.
+    print(f"--workers 1 --threads 1: {t11:.1f} s, {60 * n / t11:.1f} pairs/min; --workers 2 "
+          f"against it: {t11 / t2:.2f} x")
     print(f"warm disparity, in this process: ours {ours * 1000:.0f} ms (all cores), OpenCV "
           f"MODE_SGBM {cv * 1000:.0f} ms, ratio {ours / cv:.2f} (goal <= 0.6)")
     print(f"  with 1 numba thread (a worker of --workers 2): ours {ours1 * 1000:.0f} ms, OpenCV "

@@ -282,7 +282,10 @@ def convert_pair(task: dict, notify=None) -> dict:
     tmp.mkdir(parents=True)
     deadline = None if not task.get("timeout") else time.monotonic() + float(task["timeout"])
     log = _PairLog(tmp / "log.txt", spec.name, deadline, notify)
-    worker = {"host": socket.gethostname(), "pid": os.getpid()}
+    import numba  # loaded by the warm-up already
+
+    worker = {"host": socket.gethostname(), "pid": os.getpid(),
+              "numba_threads": numba.get_num_threads()}
     log.write(f"pair {spec.name} attempt {task['attempt']} on {worker['host']} pid "
               f"{worker['pid']}" + (f" (worker warm-up {warm:.1f} s)" if warm else ""))
     outcome: dict = {"name": spec.name, "worker": worker, "attempt": task["attempt"]}
@@ -726,6 +729,7 @@ def run_batch(
     params: Params,
     *,
     workers: int | None = None,
+    threads: int | None = None,
     cluster: str | None = None,
     pair_timeout: float | None = None,
     retries: int = 1,
@@ -744,6 +748,9 @@ def run_batch(
         The batch's parameters; manifest rows override them per pair.
     workers : int, optional
         Local worker processes (default: :func:`default_workers`).
+    threads : int, optional
+        numba threads of each local worker (default: the cores shared among the
+        workers); fewer leave cores to other work on a shared machine.
     cluster : str, optional
         Address of a Dask distributed scheduler; then ``workers`` is unused.
     pair_timeout : float, optional
@@ -781,6 +788,8 @@ def run_batch(
         raise InputError(f"--pair-timeout must be a positive number of seconds, got {pair_timeout}")
     if workers is not None and workers < 1:
         raise InputError(f"--workers must be 1 or more, got {workers}")
+    if threads is not None and threads < 1:
+        raise InputError(f"--threads must be 1 or more, got {threads}")
     # Everything that can be told before a pair runs is told now (exit 2, nothing run).
     per_pair = {s.name: pair_params(params, s) for s in specs}
     for calib in sorted({s.calib for s in specs if s.calib is not None}):
@@ -830,7 +839,8 @@ def run_batch(
             else:
                 n = default_workers(specs, params)[0] if workers is None else workers
                 n = min(n, len(tasks))  # the cores of workers with nothing to do go to the rest
-                threads = max(1, (os.cpu_count() or 1) // n)
+                if threads is None:
+                    threads = max(1, (os.cpu_count() or 1) // n)
                 events.write(f"{n} local worker processes, {threads} numba threads each")
                 _run_local(tasks, n, threads, params.to_dict(), events)
     except KeyboardInterrupt:

@@ -158,6 +158,9 @@ def _build_parser() -> argparse.ArgumentParser:
     p.add_argument("--workers", type=int, default=None,
                    help="local worker processes (default: from the cores and the memory a "
                         "pair needs)")
+    p.add_argument("--threads", type=int, default=None, metavar="N",
+                   help="numba threads of each local worker (default: the cores shared "
+                        "among the workers)")
     p.add_argument("--cluster", metavar="ADDRESS",
                    help="a Dask distributed scheduler, e.g. tcp://host:8786, instead of local "
                         "workers")
@@ -241,7 +244,8 @@ def _cmd_batch(args) -> int:
                        swap=args.swap)
     if not args.cluster:
         _say_if_compiling(args.quiet)
-    result = run_batch(specs, args.out, params, workers=args.workers, cluster=args.cluster,
+    result = run_batch(specs, args.out, params, workers=args.workers, threads=args.threads,
+                       cluster=args.cluster,
                        pair_timeout=args.pair_timeout, retries=args.retries,
                        progress_bar=not args.quiet and sys.stderr.isatty(),
                        source=str(args.source))

@@ -154,6 +154,7 @@ def test_bad_invocations_exit_2_naming_the_file(scene, tmp_path, capsys):
          "cannot be created"),
         ([str(tmp_path / "m.csv"), "--calib", str(scene["calib"])], "p2"),
         ([str(src), "--workers", "0"], "--workers"),
+        ([str(src), "--threads", "0"], "--threads"),
         # Nothing listens on the discard port of this machine: no scheduler to reach.
         ([str(src), "--calib", str(scene["calib"]), "--cluster", "tcp://127.0.0.1:9"],
          "cannot reach a Dask scheduler"),
@@ -377,8 +378,11 @@ def test_local_dask_cluster_gives_the_results_of_one_worker(scene, tmp_path):
     write_pairs(scene, tmp_path / "src", names)
     common = [tmp_path / "src", "--calib", scene["calib"], "--config", scene["params"],
               "--quiet"]
-    code, _, stderr = batch(*common, "--out", tmp_path / "one", "--workers", "1")
+    code, _, stderr = batch(*common, "--out", tmp_path / "one", "--workers", "1",
+                            "--threads", "1")
     assert code == 0, stderr
+    assert json.loads((tmp_path / "one" / "d1" / "report.json").read_text()
+                      )["batch"]["worker"]["numba_threads"] == 1
     # A real scheduler and two worker processes of one thread each on this machine.
     with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
                                   dashboard_address=None,
