@@ -70,6 +70,21 @@ def test_rasteriser_matches_brute_force(seed):
     assert (zbuf > 0).any()
 
 
+@pytest.mark.parametrize("k", [1, 2, 3])
+def test_downsample_matches_its_numpy_reference(k):
+    # Reference: the masked assignment and block mean in numpy it replaced.
+    from stereomesh.io._render_kernels import downsample
+    from stereomesh.io.previews import _BACKGROUND, _downsample_reference
+
+    rng = np.random.default_rng(k)
+    image = rng.uniform(-5, 260, (6 * k, 8 * k, 3)).astype(np.float32)
+    zbuf = np.where(rng.random((6 * k, 8 * k)) < 0.3, 0.0, rng.random((6 * k, 8 * k)))
+    got = downsample(image, zbuf, k, np.asarray(_BACKGROUND, np.float32))
+    want = _downsample_reference(image, zbuf, k)
+    assert got.dtype == np.uint8 and got.shape == (6, 8, 3)
+    assert np.abs(got.astype(int) - want).max() <= (0 if k < 3 else 1)
+
+
 def test_render_covers_the_projected_area_and_keeps_the_nearest_surface():
     # Closed form: a square of side s at depth Z, centred on the view axis, covers
     # (F s / Z)^2 pixels with F = (H/2) / tan(angle/2) (pinhole projection).

@@ -61,6 +61,31 @@ def rasterise(screen, inv_depth, shade, faces, width, height):
     return image, zbuf
 
 
+
+@njit(cache=True, nogil=True)
+def downsample(image, zbuf, k, background):
+    """Average ``k × k`` blocks of ``image`` to uint8, ``background`` where nothing was drawn.
+
+    ``image`` (H·k, W·k, 3) float32 and ``zbuf`` as :func:`rasterise` returns
+    them; a sample with ``zbuf <= 0`` counts as ``background`` (3,) float32.
+    One pass instead of a masked assignment and a mean over a 5-D view, which
+    cost numpy about 0.08 s at 1600 × 1200.
+    """
+    height, width = image.shape[0] // k, image.shape[1] // k
+    out = np.empty((height, width, 3), np.uint8)
+    scale = 1.0 / (k * k)
+    for y in range(height):
+        for x in range(width):
+            for ch in range(3):
+                total = 0.0
+                for dy in range(k):
+                    for dx in range(k):
+                        yy, xx = y * k + dy, x * k + dx
+                        total += image[yy, xx, ch] if zbuf[yy, xx] > 0.0 else background[ch]
+                out[y, x, ch] = min(max(np.rint(total * scale), 0.0), 255.0)
+    return out
+
+
 def rasterise_reference(screen, inv_depth, shade, faces, width, height):
     """:func:`rasterise` pixel by pixel over every face in NumPy (slow, for the tests)."""
     zbuf = np.zeros((height, width), np.float64)
