@@ -216,3 +216,18 @@ def test_pipeline_repairs_grid_meshes_in_pixel_space_then_decimates():
     # Without its pair the same mesh goes the general way.
     _, fig3 = repair_surface(mesh, Params())
     assert "method" not in fig3 and fig3["holes_filled"] == 1
+
+
+@pytest.mark.parametrize("density", [0.05, 0.3, 0.5, 0.7, 0.95])
+def test_hole_labels_match_scipy(density):
+    # Reference: SciPy's ndimage.label with the full 3 x 3 structure (8-connected),
+    # numbering included.
+    from stereomesh.geometry.grid_repair import _hole_labels, _hole_labels_reference
+
+    rng = np.random.default_rng(int(density * 100))
+    for shape in [(1, 1), (1, 9), (7, 1), (40, 53)]:
+        valid = rng.random(shape) > density
+        labels, n = _hole_labels(valid)
+        want, n_want = _hole_labels_reference(valid)
+        assert n == n_want
+        np.testing.assert_array_equal(labels, want)

@@ -308,3 +308,69 @@ def grid_faces(code, vid):
                                           c + _TRIANGLE_CORNERS[t, k, 1]]
                     i += 1
     return faces
+
+
+@njit(cache=True)
+def _find(parent, i):
+    while parent[i] != i:
+        parent[i] = parent[parent[i]]  # path halving
+        i = parent[i]
+    return i
+
+
+@njit(cache=True)
+def invalid_components(valid):
+    """8-connected components of the pixels where ``valid`` is False.
+
+    Returns ``(labels (H, W) int32, n)``: 0 on valid pixels, components
+    numbered 1..n in the raster order of their first pixel (as SciPy's
+    ``ndimage.label`` numbers them). Two raster passes with union-find; serial,
+    since each pixel joins the ones above and to its left.
+    """
+    h, w = valid.shape
+    provisional = np.zeros((h, w), np.int32)
+    parent = np.zeros(h * w // 2 + 2, np.int32)
+    n_prov = 0
+    for r in range(h):
+        for c in range(w):
+            if valid[r, c]:
+                continue
+            label = 0
+            # Already-visited neighbours: left, and the three above.
+            for dr, dc in ((0, -1), (-1, -1), (-1, 0), (-1, 1)):
+                rr, cc = r + dr, c + dc
+                if rr < 0 or cc < 0 or cc >= w:
+                    continue
+                other = provisional[rr, cc]
+                if other == 0:
+                    continue
+                if label == 0:
+                    label = _find(parent, other)
+                else:
+                    a, b = _find(parent, label), _find(parent, other)
+                    if a != b:
+                        parent[max(a, b)] = min(a, b)
+                        label = min(a, b)
+            if label == 0:
+                n_prov += 1
+                if n_prov >= parent.shape[0]:
+                    grown = np.zeros(2 * parent.shape[0], np.int32)
+                    grown[: parent.shape[0]] = parent
+                    parent = grown
+                parent[n_prov] = n_prov
+                label = n_prov
+            provisional[r, c] = label
+    final = np.zeros(n_prov + 1, np.int32)
+    n = 0
+    labels = np.zeros((h, w), np.int32)
+    for r in range(h):
+        for c in range(w):
+            p = provisional[r, c]
+            if p == 0:
+                continue
+            root = _find(parent, p)
+            if final[root] == 0:
+                n += 1
+                final[root] = n
+            labels[r, c] = final[root]
+    return labels, n
