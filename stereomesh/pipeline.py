@@ -480,7 +480,7 @@ def warm_up_stages(stop_after: str = "repair") -> None:
     """
     from stereomesh.geometry._mesh_kernels import kept_faces
     from stereomesh.geometry.repair import _small_components, count_boundary_loops
-    from stereomesh.io._render_kernels import rasterise
+    from stereomesh.io._render_kernels import downsample, rasterise
     from stereomesh.matching import disparity as engine
     from stereomesh.matching._sgm_kernels import census_unary
     from stereomesh.matching.winners import Winners
@@ -495,8 +495,9 @@ def warm_up_stages(stop_after: str = "repair") -> None:
     count_boundary_loops(square, 4)
     kept_faces(square, np.ones(2, bool), 4)
     if stop_after == "repair":  # the mesh preview, drawn last
-        rasterise(corners[:, :2] * 4.0, np.ones(4), np.zeros((4, 3), np.float32),
-                  square.astype(np.int64), 4, 4)
+        image, zbuf = rasterise(corners[:, :2] * 4.0, np.ones(4), np.zeros((4, 3), np.float32),
+                                square.astype(np.int64), 4, 4)
+        downsample(image, zbuf, 2, np.zeros(3, np.float32))
 
     shift = 6
     rng = np.random.default_rng(0)
