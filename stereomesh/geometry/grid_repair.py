@@ -310,16 +310,19 @@ def _keep_faces(mesh: TriMesh, keep: np.ndarray) -> TriMesh:
     faces, used = kept_faces(np.ascontiguousarray(mesh.faces), np.ascontiguousarray(keep, bool),
                              len(mesh.vertices))
 
+    index = np.flatnonzero(used)
+
     def pick(a):
-        return None if a is None else a[used]
+        # np.take with indices: a boolean mask recounts itself for every attribute.
+        return None if a is None else np.take(a, index, axis=0)
 
     return TriMesh(
-        vertices=mesh.vertices[used],
+        vertices=pick(mesh.vertices),
         faces=faces,
-        colors=mesh.colors[used],
-        confidence=mesh.confidence[used],
-        sigma_z=mesh.sigma_z[used],
-        filled=mesh.filled[used],
+        colors=pick(mesh.colors),
+        confidence=pick(mesh.confidence),
+        sigma_z=pick(mesh.sigma_z),
+        filled=pick(mesh.filled),
         normals=pick(mesh.normals),
         uv=pick(mesh.uv),
         pixels=pick(mesh.pixels),
