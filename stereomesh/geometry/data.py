@@ -52,6 +52,15 @@ def _index(mask_or_index, n: int) -> np.ndarray:
     return sel
 
 
+def take_rows(a: np.ndarray | None, index: np.ndarray) -> np.ndarray | None:
+    """Rows ``index`` of an attribute array (None stays None).
+
+    ``np.take`` of indices: about 3 x faster than fancy indexing on the rows of
+    a megapixel cloud, and a boolean mask would recount itself per attribute.
+    """
+    return None if a is None else np.take(a, index, axis=0)
+
+
 @dataclass
 class PointCloud:
     """Coloured points in the left rectified camera frame.
@@ -123,8 +132,7 @@ class PointCloud:
         idx = _index(mask_or_index, len(self))
 
         def pick(a):
-            # np.take: about 3 x faster than fancy indexing on rows of a megapixel cloud.
-            return None if a is None else np.take(a, idx, axis=0)
+            return take_rows(a, idx)
 
         return PointCloud(
             points=pick(self.points),

@@ -23,7 +23,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from stereomesh.geometry.data import TriMesh
+from stereomesh.geometry.data import TriMesh, take_rows
 
 __all__ = ["coarser_grid_mesh", "fill_small_holes", "find_small_holes", "grid_maps",
            "pixel_maps", "repair_grid_mesh"]
@@ -313,8 +313,7 @@ def _keep_faces(mesh: TriMesh, keep: np.ndarray) -> TriMesh:
     index = np.flatnonzero(used)
 
     def pick(a):
-        # np.take with indices: a boolean mask recounts itself for every attribute.
-        return None if a is None else np.take(a, index, axis=0)
+        return take_rows(a, index)
 
     return TriMesh(
         vertices=pick(mesh.vertices),

@@ -61,7 +61,6 @@ def rasterise(screen, inv_depth, shade, faces, width, height):
     return image, zbuf
 
 
-
 @njit(cache=True, nogil=True)
 def downsample(image, zbuf, k, background):
     """Average ``k × k`` blocks of ``image`` to uint8, ``background`` where nothing was drawn.
