@@ -132,6 +132,12 @@ class DisparityParams(_Section):
     align_passes: int = param(2, "alignment refinement: passes; each later one re-estimates "
                               "the window's slant from the one before and makes one step",
                               min=1, max=4)
+    align_first_width: int = param(7, "alignment refinement: window width of the first "
+                                   "pass when later passes follow, odd, pixels (at most "
+                                   "align_width)", min=3, max=31)
+    align_first_height: int = param(5, "alignment refinement: window height of the first "
+                                    "pass when later passes follow, odd, pixels (at most "
+                                    "align_height)", min=1, max=31)
     lr_max_diff: int = param(1, "left-right check tolerance, pixels", min=0, max=16)
     speckle_size: int = param(100, "largest blob removed as speckle, pixels; 0 disables",
                               min=0)
@@ -153,6 +159,9 @@ class DisparityParams(_Section):
         if self.align_width % 2 == 0 or self.align_height % 2 == 0:
             raise InputError(f"{source}: alignment window sides must be odd, got "
                              f"{self.align_width}x{self.align_height}")
+        if self.align_first_width % 2 == 0 or self.align_first_height % 2 == 0:
+            raise InputError(f"{source}: the first alignment pass's window sides must be odd, "
+                             f"got {self.align_first_width}x{self.align_first_height}")
         if self.p1 >= self.p2:
             raise InputError(f"{source}: p1 ({self.p1}) must be below p2 ({self.p2})")
 

@@ -34,6 +34,8 @@ def test_overrides_are_checked():
         Params().with_overrides({"method": "magic"})
     with pytest.raises(InputError, match="unknown"):
         Params().with_overrides({"nope": 1})
+    with pytest.raises(InputError, match="first alignment pass"):
+        Params().with_overrides({"align_first_width": 6})
 
 
 def test_config_file(tmp_path):

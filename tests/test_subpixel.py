@@ -111,8 +111,9 @@ def test_numba_kernel_equals_the_numpy_reference_across_pixel_blocks():
     left += rng.normal(0, 2.0, left.shape).astype(np.float32)
     start = (np.rint(truth) + rng.integers(-1, 2, truth.shape) * 0.3).astype(np.float32)
     start[4, _BLOCK - 2 : _BLOCK + 2] = np.nan
-    # The default two passes, and one pass of up to four steps (early stops per pixel).
-    for kw in ({}, {"iterations": 4, "passes": 1}):
+    # The default two passes (the first on a smaller window), two on one window,
+    # and one pass of up to four steps (early stops per pixel).
+    for kw in ({}, {"first_window": (9, 7)}, {"iterations": 4, "passes": 1}):
         fast = align_subpixel(left, right, start, **kw)
         slow = align_subpixel_reference(left, right, start, **kw)
         np.testing.assert_array_equal(np.isnan(fast[1]), np.isnan(slow[1]))
@@ -147,6 +148,8 @@ def test_alignment_refuses_even_windows():
     image = np.zeros((8, 16), np.float32)
     with pytest.raises(ValueError, match="odd"):
         align_subpixel(image, image, image, window=(8, 5))
+    with pytest.raises(ValueError, match="odd"):
+        align_subpixel(image, image, image, first_window=(6, 5))
 
 
 def _near_truth_errors(disparity, gt, occluded):

@@ -233,7 +233,8 @@ def compute_disparity(
         t_align = time.perf_counter()
         disparity, sigma_fit, converged = align_subpixel(
             gl, gr, disparity, window=(params.align_width, params.align_height),
-            iterations=params.align_iterations, passes=params.align_passes)
+            iterations=params.align_iterations, passes=params.align_passes,
+            first_window=(params.align_first_width, params.align_first_height))
         sigma_d = alignment_sigma(sigma_fit, disparity)
         timings["subpixel"] = time.perf_counter() - t_align
         valid = np.isfinite(disparity)
