@@ -144,6 +144,24 @@ def test_alignment_sigma_edges_equal_scipy_filters():
     np.testing.assert_allclose(engine.alignment_sigma(fit, disp), expected, rtol=1e-6)
 
 
+def test_alignment_sigma_kernel_equals_the_array_version():
+    # The one-pass kernel against numpy and OpenCV's dilate / erode, to the bit,
+    # on an image with NaN runs, depth steps and the borders' clipped windows.
+    from stereomesh.matching import disparity as engine
+
+    rng = np.random.default_rng(12)
+    disp = (np.repeat(rng.uniform(5, 9, (9, 8)), 8, axis=1).repeat(5, axis=0)[:, :61]
+            + rng.normal(0, 0.3, (45, 61))).astype(np.float32)
+    disp[rng.random(disp.shape) < 0.08] = np.nan
+    disp[10:14, 20:40] = np.nan
+    fit = rng.uniform(0.0, 0.08, disp.shape).astype(np.float32)
+    fit[rng.random(disp.shape) < 0.1] = np.nan
+    for d in (disp, disp[:3, :4], disp[:1]):
+        f = fit[: d.shape[0], : d.shape[1]]
+        np.testing.assert_array_equal(engine.alignment_sigma(f, d),
+                                      engine._alignment_sigma_reference(f, d))
+
+
 def test_alignment_refuses_even_windows():
     image = np.zeros((8, 16), np.float32)
     with pytest.raises(ValueError, match="odd"):

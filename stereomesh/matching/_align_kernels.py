@@ -405,3 +405,47 @@ def _steps(work, nb, fits):
         fits[_U(q)] = -c / gain if ok else 0.0
         fits[_U(_BLOCK + q)] = var if ok else np.nan
         fits[_U(2 * _BLOCK + q)] = 1.0 if ok else 0.0
+
+
+@njit(cache=True, parallel=True)
+def sigma_d_map(sigma_fit, disparity, scale, floor2, edge_factor, failed):
+    """Disparity sigma from the fit's: see :func:`stereomesh.matching.disparity.alignment_sigma`.
+
+    ``sqrt((scale s)^2 + floor2)``, times ``edge_factor`` where the 5 x 5
+    spread (maximum minus minimum, window clipped at the image border) of
+    ``disparity`` exceeds 1 px, NaN disparities counting as -1e4, and
+    ``failed`` where ``s`` is NaN. One pass and one output array in place of
+    the eight full-image temporaries of the array version (in a one-shot
+    command each costs fresh pages). Float32 throughout, no fast-math: equal
+    to the array version to the bit. The constants come as float32.
+    """
+    H, W = disparity.shape
+    out = np.empty((H, W), np.float32)
+    low = np.float32(-1e4)
+    high = np.float32(1e4)
+    one = np.float32(1.0)
+    for y in prange(H):
+        yy = np.int64(y)  # prange's index is unsigned: ``y - 2`` would wrap
+        # Column maxima and minima over the window's rows, two entries of padding
+        # each side that never win, so that the row pass has fixed offsets.
+        col_max = np.full(W + 4, low, np.float32)
+        col_min = np.full(W + 4, high, np.float32)
+        for r in range(max(yy - 2, 0), min(yy + 2, H - 1) + 1):
+            row = disparity[r]
+            for x in range(W):
+                v = row[x]
+                v = v if v == v else low
+                col_max[x + 2] = max(col_max[x + 2], v)
+                col_min[x + 2] = min(col_min[x + 2], v)
+        fit = sigma_fit[yy]
+        dst = out[yy]
+        for x in range(W):
+            hi = max(max(max(col_max[x], col_max[x + 1]), max(col_max[x + 2], col_max[x + 3])),
+                     col_max[x + 4])
+            lo = min(min(min(col_min[x], col_min[x + 1]), min(col_min[x + 2], col_min[x + 3])),
+                     col_min[x + 4])
+            s = fit[x] * scale
+            v = np.sqrt(s * s + floor2)
+            v = v * edge_factor if hi - lo > one else v
+            dst[x] = v if fit[x] == fit[x] else failed
+    return out

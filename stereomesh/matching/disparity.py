@@ -326,6 +326,19 @@ def alignment_sigma(sigma_fit: np.ndarray, disparity: np.ndarray | None = None) 
     >>> round(float(alignment_sigma(np.array([0.0], np.float32))[0]), 3)
     0.025
     """
+    if disparity is not None and np.ndim(disparity) == 2:
+        from stereomesh.matching._align_kernels import sigma_d_map
+
+        return sigma_d_map(
+            np.ascontiguousarray(sigma_fit, np.float32),
+            np.ascontiguousarray(disparity, np.float32),
+            np.float32(ALIGNMENT_SIGMA_SCALE), np.float32(ALIGNMENT_SIGMA_FLOOR**2),
+            np.float32(ALIGNMENT_EDGE_FACTOR), np.float32(ALIGNMENT_SIGMA_FAILED))
+    return _alignment_sigma_reference(sigma_fit, disparity)
+
+
+def _alignment_sigma_reference(sigma_fit, disparity=None):
+    """Array version of :func:`alignment_sigma` (numpy and OpenCV), the kernel's reference."""
     # In place in float32: np.hypot's per-element library call costs four times as much.
     s = np.multiply(np.asarray(sigma_fit, np.float32), np.float32(ALIGNMENT_SIGMA_SCALE))
     np.multiply(s, s, out=s)
