@@ -318,12 +318,40 @@ def configure_process() -> None:
     The disparity kernels start one parallel region per image row; OpenMP
     starts one in about a microsecond, numba's fallback work queue in about a
     hundred, so OpenMP is preferred (a user's own setting wins). Then numpy
-    is asked for small pages (:func:`_prefer_small_pages`).
+    is asked for small pages (:func:`_prefer_small_pages`) and numba's array
+    maths is loaded without its BLAS probe (:func:`_load_numba_without_blas_probe`).
     """
     import os
 
     os.environ.setdefault("NUMBA_THREADING_LAYER_PRIORITY", "omp tbb workqueue")
     _prefer_small_pages()
+    _load_numba_without_blas_probe()
+
+
+def _load_numba_without_blas_probe() -> None:
+    """Load numba's numpy array maths with its one-time BLAS check answered "none".
+
+    The first kernel call of a process loads numba's implementations, and the
+    array-maths module checks once for a BLAS by importing
+    ``scipy.linalg.cython_blas``: 0.25-0.3 s of every command on this
+    project's reference VM, spent on scipy for something no stereomesh kernel
+    uses (the check only picks a BLAS inner product for ``np.correlate`` and
+    ``np.convolve``; the plain loop serves otherwise). A ``None`` entry in
+    ``sys.modules`` makes that one import fail, as Python's import system
+    documents, for the duration of loading; numba's linear algebra still
+    imports scipy itself if a kernel ever asks for it.
+    """
+    import sys
+
+    probe = "scipy.linalg.cython_blas"
+    if "numba.np.arraymath" in sys.modules or probe in sys.modules:
+        return
+    sys.modules[probe] = None
+    try:
+        import numba.np.arraymath  # noqa: F401
+    finally:
+        if probe in sys.modules and sys.modules[probe] is None:
+            del sys.modules[probe]
 
 
 def _prefer_small_pages() -> None:

@@ -149,3 +149,26 @@ def test_first_run_compiles_the_later_stages_in_a_second_process(monkeypatch, ca
     monkeypatch.setattr(disparity, "kernels_cached", lambda: True)
     with cli._first_run(quiet=False) as helper:
         assert helper is None
+
+
+def test_command_setup_skips_numbas_blas_probe_and_keeps_linear_algebra():
+    # A fresh interpreter, as a command has: numba's array maths loads without
+    # importing scipy.linalg, and a kernel that does need BLAS still compiles and
+    # gives numpy's answer.
+    import subprocess
+    import sys
+
+    code = (
+        "import sys\n"
+        "from stereomesh.cli import configure_process\n"
+        "configure_process()\n"
+        "assert 'scipy.linalg' not in sys.modules, 'scipy.linalg was imported'\n"
+        "import numba, numpy as np\n"
+        "f = numba.njit(lambda a, b: np.dot(a, b))\n"
+        "a = np.arange(9.0).reshape(3, 3)\n"
+        "assert np.array_equal(f(a, a), a @ a)\n"
+        "print('ok')\n"
+    )
+    proc = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                          timeout=300)
+    assert proc.returncode == 0 and proc.stdout.strip() == "ok", proc.stderr[-2000:]
