@@ -159,9 +159,6 @@ def _harmonic_fill(values: np.ndarray, hole: np.ndarray) -> np.ndarray:
     Every pixel of ``hole`` must have its four edge neighbours inside the image,
     each either in ``hole`` or with a finite value.
     """
-    from scipy.sparse import coo_matrix
-    from scipy.sparse.linalg import spsolve
-
     h, w = values.shape
     idx = np.flatnonzero(hole.ravel())
     n = len(idx)
@@ -171,20 +168,70 @@ def _harmonic_fill(values: np.ndarray, hole: np.ndarray) -> np.ndarray:
     unknown = np.full(h * w, -1, np.int64)
     unknown[idx] = np.arange(n)
     flat_vals = out.ravel()
-    rows, cols, data = [np.arange(n)], [np.arange(n)], [np.full(n, 4.0)]
+    # Each unknown's four neighbours as unknown numbers; n stands for a known
+    # neighbour, whose value goes to the right-hand side instead.
+    neighbours = np.empty((4, n), np.int64)
     rhs = np.zeros(n)
-    for dr, dc in _EDGE_NEIGHBOURS:
+    for k, (dr, dc) in enumerate(_EDGE_NEIGHBOURS):
         nb = idx + dr * w + dc
         j = unknown[nb]
         inside = j >= 0
-        rows.append(np.flatnonzero(inside))
-        cols.append(j[inside])
-        data.append(np.full(int(inside.sum()), -1.0))
+        neighbours[k] = np.where(inside, j, n)
         rhs[~inside] += flat_vals[nb[~inside]]
+    solution = _laplace_cg(neighbours, rhs)
+    if solution is None:  # not converged (a long, thin hole): the direct solver
+        solution = _laplace_direct(neighbours, rhs)
+    flat_vals[idx] = solution
+    return out
+
+
+def _laplace_cg(neighbours: np.ndarray, rhs: np.ndarray, tol: float = 1e-12):
+    """Conjugate gradients on ``4 x_i - sum of x over i's unknown neighbours = rhs_i``.
+
+    The matrix is the Dirichlet Laplacian of the holes: symmetric, positive
+    definite (each hole touches known pixels) and block diagonal, one small
+    block a hole, so CG converges in a few dozen matrix-free steps. In numpy:
+    the sparse direct solver would import ``scipy.sparse`` (0.2-0.3 s of every
+    command) for a millisecond's solve. Returns None if the relative residual
+    has not reached ``tol`` within the step budget.
+    """
+    n = len(rhs)
+    padded = np.zeros(n + 1)  # the last entry stays 0: the known neighbours
+
+    def laplacian(v):
+        padded[:n] = v
+        gathered = padded[neighbours]
+        return 4.0 * v - (gathered[0] + gathered[1] + gathered[2] + gathered[3])
+
+    x = rhs / 4.0
+    r = rhs - laplacian(x)
+    p = r.copy()
+    rr = float(r @ r)
+    stop = tol * tol * max(float(rhs @ rhs), 1e-300)
+    for _ in range(min(n, 40 * int(np.sqrt(n)) + 200)):
+        if rr <= stop:
+            return x
+        q = laplacian(p)
+        alpha = rr / float(p @ q)
+        x += alpha * p
+        r -= alpha * q
+        rr, rr_old = float(r @ r), rr
+        p = r + (rr / rr_old) * p
+    return x if rr <= stop else None
+
+
+def _laplace_direct(neighbours: np.ndarray, rhs: np.ndarray) -> np.ndarray:
+    """The same system by scipy's sparse direct solver."""
+    from scipy.sparse import coo_matrix
+    from scipy.sparse.linalg import spsolve
+
+    n = len(rhs)
+    rows = [np.arange(n)] + [np.flatnonzero(nb < n) for nb in neighbours]
+    cols = [np.arange(n)] + [nb[nb < n] for nb in neighbours]
+    data = [np.full(n, 4.0)] + [np.full(len(c), -1.0) for c in cols[1:]]
     a = coo_matrix((np.concatenate(data), (np.concatenate(rows), np.concatenate(cols))),
                    shape=(n, n)).tocsc()
-    flat_vals[idx] = spsolve(a, rhs)
-    return out
+    return spsolve(a, rhs)
 
 
 def fill_small_holes(
