@@ -128,3 +128,21 @@ def test_map_previews_carry_colour_bars_and_a_legend(tmp_path):
     # Near is warm in both maps: the right side has the larger disparity.
     depth = np.asarray(Image.open(paths["depth"]).convert("RGB")).astype(int)
     assert depth[20, -2, 0] > depth[20, 1, 0]
+
+
+@pytest.mark.parametrize("level", [1, 6])
+def test_png_writer_round_trips_through_pillow(tmp_path, level):
+    # Written with OpenCV, read back with Pillow (another library): grey and
+    # RGB pixels and channel order preserved at both compression settings.
+    from stereomesh.io.images import write_png
+
+    rng = np.random.default_rng(level)
+    rgb = rng.integers(0, 256, (37, 53, 3), dtype=np.uint8)
+    rgb[:10] = (255, 0, 0)  # a red band: a swapped channel order would show
+    grey = rng.integers(0, 256, (37, 53), dtype=np.uint8)
+    for name, image in (("rgb.png", rgb), ("grey.png", grey)):
+        write_png(tmp_path / name, image, compress_level=level)
+        np.testing.assert_array_equal(np.asarray(Image.open(tmp_path / name)), image)
+    with pytest.raises(ValueError, match="uint8"):
+        write_png(tmp_path / "f.png", rgb.astype(np.float32))
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["grey.png", "rgb.png"]
