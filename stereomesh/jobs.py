@@ -8,6 +8,7 @@ the report says ``"status": "failed"`` with the stage named.
 
 from __future__ import annotations
 
+import contextlib
 from collections.abc import Sequence
 from pathlib import Path
 
@@ -57,6 +58,26 @@ def read_while_warming(inputs, calib, params: Params, *, layout="pair", swap=Fal
         finally:
             pair, records = future.result()
     return pair, records
+
+
+def _yield_cores() -> None:
+    """Lower the calling thread's scheduling priority to the lowest (Linux only).
+
+    The file writer runs beside the geometry stages, whose kernels use every
+    core; at equal priority it takes a core from one kernel thread and the
+    whole parallel loop waits for that thread. At nice 19 it runs in the
+    kernels' serial stretches and after them instead (one-shot run at 1.4 MP:
+    3.02 s against 3.14 s median of 10, the cloud filter 0.47 s against 0.61 s).
+    On Linux the nice value belongs to the thread (``setpriority(2)`` with the
+    thread id); elsewhere nothing is changed.
+    """
+    import os
+    import sys
+    import threading
+
+    if sys.platform.startswith("linux"):
+        with contextlib.suppress(OSError):
+            os.setpriority(os.PRIO_PROCESS, threading.get_native_id(), 19)
 
 
 def run_job(
@@ -118,7 +139,8 @@ def run_job(
         except Exception:
             return None
 
-    with ThreadPoolExecutor(1, thread_name_prefix="stereomesh-writer") as writer:
+    with ThreadPoolExecutor(1, thread_name_prefix="stereomesh-writer",
+                            initializer=_yield_cores) as writer:
         try:
             result = reconstruct(pair, params, workspace=workspace, progress=progress,
                                  stop_after=stop_after, on_stage=stage_done)

@@ -405,3 +405,27 @@ def test_first_run_says_it_compiles(tmp_path, monkeypatch):
     (tmp_path / "cache" / "x").mkdir(parents=True)
     (tmp_path / "cache" / "x" / "_sgm_kernels.sgm_solve-1.py311.nbi").write_bytes(b"")
     assert kernels_cached()
+
+
+@pytest.mark.skipif(not __import__("sys").platform.startswith("linux"),
+                    reason="per-thread nice values are a Linux feature")
+def test_file_writer_thread_yields_the_cores_and_leaves_the_caller_alone():
+    # setpriority(2) on Linux: the nice value belongs to the thread, so the
+    # writer's change must not reach the thread that started it.
+    import os
+    import threading
+
+    from stereomesh.jobs import _yield_cores
+
+    seen = {}
+
+    def writer():
+        _yield_cores()
+        seen["writer"] = os.getpriority(os.PRIO_PROCESS, threading.get_native_id())
+
+    before = os.getpriority(os.PRIO_PROCESS, threading.get_native_id())
+    t = threading.Thread(target=writer)
+    t.start()
+    t.join()
+    assert seen["writer"] == 19
+    assert os.getpriority(os.PRIO_PROCESS, threading.get_native_id()) == before
