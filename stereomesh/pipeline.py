@@ -467,12 +467,18 @@ def reconstruct(
 def warm_up_stages(stop_after: str = "repair") -> None:
     """Compile (or load) the kernels of the stages around the solver, on a tiny pair.
 
-    Runs :func:`reconstruct` with default parameters on a 48 × 64 synthetic
-    pair, the solver replaced by a fixed answer (the pair's true shift), so
-    that everything the default path needs except the SGM kernels is compiled:
-    the refinement, confidence and energy kernels and the geometry stages up
-    to ``stop_after``. The first run after an install starts it in a second
+    Runs the stages with default parameters on a 48 × 64 synthetic pair, the
+    solver replaced by a fixed answer (the pair's true shift), so that
+    everything the default path needs except the SGM kernels is compiled: the
+    refinement, confidence and energy kernels and the geometry stages up to
+    ``stop_after``. The first run after an install starts it in a second
     process while the first compiles the solver.
+
+    The order is the command's needs: first the kernels right after the solver
+    (the sub-pixel alignment is the longest compile after it), then the
+    geometry from the last stage back, so that the command's process, which
+    reaches the geometry in stage order, and this one compile from opposite
+    ends and meet in the middle instead of compiling the same kernels.
 
     Examples
     --------
@@ -484,20 +490,6 @@ def warm_up_stages(stop_after: str = "repair") -> None:
     from stereomesh.matching import disparity as engine
     from stereomesh.matching._sgm_kernels import census_unary
     from stereomesh.matching.winners import Winners
-
-    # First the kernels the command needs right after its solver and at its
-    # very end: compiled here early, they are in the cache before it asks.
-    planes = np.zeros((3, 4, 8), np.uint16)
-    census_unary(planes, planes, np.zeros((4, 8), np.int32), 0, 48.0)
-    square = np.array([[0, 1, 2], [0, 2, 3]], np.int32)
-    corners = np.array([[0.0, 0, 1], [1, 0, 1], [1, 1, 1], [0, 1, 1]])
-    _small_components(corners, square, 0.01)
-    count_boundary_loops(square, 4)
-    kept_faces(square, np.ones(2, bool), 4)
-    if stop_after == "repair":  # the mesh preview, drawn last
-        image, zbuf = rasterise(corners[:, :2] * 4.0, np.ones(4), np.zeros((4, 3), np.float32),
-                                square.astype(np.int64), 4, 4)
-        downsample(image, zbuf, 2, np.zeros(3, np.float32))
 
     shift = 6
     rng = np.random.default_rng(0)
@@ -514,23 +506,34 @@ def warm_up_stages(stop_after: str = "repair") -> None:
         return Winners(best, low, high, high * 0.5, high * 0.5, best.copy(), low.copy()), {}
 
     params = Params().with_overrides({"disp_range": "0:16", "speckle_size": 0})
-    last = STAGES.index(stop_after)
-    if last >= STAGES.index("filter_cloud"):
-        # The geometry stages next, from a made-up disparity map: the command's
-        # process reaches the kernels right after its solver itself, so the two
-        # processes compile from opposite ends and meet in the middle.
-        disparity = np.full((48, 64), float(shift), np.float32)
-        disparity[20:23, 30:33] = np.nan  # a small hole for the repair
-        maps = SimpleNamespace(disparity=disparity, confidence=np.ones_like(disparity),
-                               sigma_d=np.full_like(disparity, 0.1))
-        cloud, _ = cloud_from_disparity(pair, maps, params)
-        cloud, _ = clean_cloud(cloud, params)
-        if last >= STAGES.index("surface"):
-            mesh, _ = surface_from_cloud(cloud, params, pair.rig)
-            if last >= STAGES.index("repair"):
-                repair_surface(mesh, params, pair)
+    planes = np.zeros((3, 4, 8), np.uint16)
+    census_unary(planes, planes, np.zeros((4, 8), np.int32), 0, 48.0)
     solver, engine._solve = engine._solve, fixed_answer
     try:
-        reconstruct(pair, params, stop_after=stop_after)
+        disparity_of_pair(pair, params)
     finally:
         engine._solve = solver
+    last = STAGES.index(stop_after)
+    if last < STAGES.index("filter_cloud"):
+        return
+    square = np.array([[0, 1, 2], [0, 2, 3]], np.int32)
+    corners = np.array([[0.0, 0, 1], [1, 0, 1], [1, 1, 1], [0, 1, 1]])
+    if stop_after == "repair":  # the mesh preview, drawn last
+        image, zbuf = rasterise(corners[:, :2] * 4.0, np.ones(4), np.zeros((4, 3), np.float32),
+                                square.astype(np.int64), 4, 4)
+        downsample(image, zbuf, 2, np.zeros(3, np.float32))
+        _small_components(corners, square, 0.01)
+        count_boundary_loops(square, 4)
+        kept_faces(square, np.ones(2, bool), 4)
+    # A made-up disparity map with a small hole for the repair.
+    disparity = np.full((48, 64), float(shift), np.float32)
+    disparity[20:23, 30:33] = np.nan
+    maps = SimpleNamespace(disparity=disparity, confidence=np.ones_like(disparity),
+                           sigma_d=np.full_like(disparity, 0.1))
+    cloud, _ = cloud_from_disparity(pair, maps, params)
+    if last >= STAGES.index("surface"):
+        # The grid mesh needs no normals: surface and repair before the cloud filter.
+        mesh, _ = surface_from_cloud(cloud, params, pair.rig)
+        if last >= STAGES.index("repair"):
+            repair_surface(mesh, params, pair)
+    clean_cloud(cloud, params)

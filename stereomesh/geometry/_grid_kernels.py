@@ -183,7 +183,9 @@ def grid_triangles(z, valid, cols, rows, limit):
     """
     h, w = z.shape
     code = np.zeros((max(h - 1, 0), max(w - 1, 0)), np.uint8)
-    for r in prange(h - 1):
+    for r_ in prange(h - 1):
+        # prange's index is unsigned: the helpers would be compiled again for it.
+        r = np.int64(r_)
         for c in range(w - 1):
             va, vb = valid[r, c], valid[r, c + 1]
             vc, ve = valid[r + 1, c], valid[r + 1, c + 1]
@@ -250,7 +252,8 @@ def grid_vertices(code, z, cols, rows):
     """
     h, w = z.shape
     used = np.zeros((h, w), np.bool_)
-    for r in prange(h):
+    for r_ in prange(h):
+        r = np.int64(r_)  # unsigned prange index: see grid_triangles
         for c in range(w):
             hit = False
             for t in range(4):
@@ -263,7 +266,8 @@ def grid_vertices(code, z, cols, rows):
         row_start[r + 1] = row_start[r] + used[r].sum()
     vid = np.full((h, w), -1, np.int32)
     normals = np.zeros((row_start[h], 3), np.float32)
-    for r in prange(h):
+    for r_ in prange(h):
+        r = np.int64(r_)
         i = row_start[r]
         for c in range(w):
             if not used[r, c]:
@@ -345,9 +349,9 @@ def invalid_components(valid):
                 if other == 0:
                     continue
                 if label == 0:
-                    label = _find(parent, other)
+                    label = _find(parent, np.int64(other))
                 else:
-                    a, b = _find(parent, label), _find(parent, other)
+                    a, b = _find(parent, np.int64(label)), _find(parent, np.int64(other))
                     if a != b:
                         parent[max(a, b)] = min(a, b)
                         label = min(a, b)
@@ -368,7 +372,7 @@ def invalid_components(valid):
             p = provisional[r, c]
             if p == 0:
                 continue
-            root = _find(parent, p)
+            root = _find(parent, np.int64(p))
             if final[root] == 0:
                 n += 1
                 final[root] = n

@@ -62,8 +62,10 @@ def vertex_components(faces, n_vertices):
     """
     parent = np.arange(n_vertices)
     for f in range(faces.shape[0]):
-        _join(parent, faces[f, 0], faces[f, 1])
-        _join(parent, faces[f, 0], faces[f, 2])
+        # int64 as everywhere else: the helpers are compiled once per argument type.
+        a, b, c = np.int64(faces[f, 0]), np.int64(faces[f, 1]), np.int64(faces[f, 2])
+        _join(parent, a, b)
+        _join(parent, a, c)
     return _compact(parent, np.ones(n_vertices, np.bool_))
 
 

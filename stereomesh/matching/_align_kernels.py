@@ -123,7 +123,7 @@ def _align_row(left, right, init, y, rx, ry, tol, iterations, max_shift, out, si
     var = np.empty(_BLOCK, np.float64)
     fits = np.empty(3 * _BLOCK, np.float64)
     state = np.empty(_BLOCK, np.int8)  # 0 fitting, 1 converged, -1 failed or NaN
-    x0 = 0
+    x0 = np.int64(0)  # not the literal 0: numba would compile the callees for it too
     while x0 < W:
         # Blocks start and end on finite pixels: NaN runs (occlusions, the
         # image's unmatched side) cost no vector lanes.
