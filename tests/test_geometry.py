@@ -694,6 +694,22 @@ def test_mean_neighbour_distance_matches_brute_force(k, radius):
         np.testing.assert_allclose(got[i], want, rtol=1e-12)
 
 
+@pytest.mark.parametrize("radius", [1, 2, 3])
+def test_grid_normals_kernel_matches_the_whole_window_reference(radius):
+    # The box-sum kernel against the point-by-point window sums, with missing
+    # pixels (scattered and a block) and the image border in the windows.
+    from stereomesh.geometry.organised import _grid_normals_reference, grid_normals
+
+    pts, pixels = _organised_surface(h=23, w=31, seed=3)
+    rng = np.random.default_rng(4)
+    keep = rng.random(len(pts)) > 0.15
+    block = (pixels[:, 0] >= 10) & (pixels[:, 0] < 15) & (pixels[:, 1] >= 6) & (pixels[:, 1] < 9)
+    keep &= ~block
+    pc = _cloud(pts[keep], pixels=pixels[keep])
+    np.testing.assert_allclose(grid_normals(pc, radius), _grid_normals_reference(pc, radius),
+                               atol=1e-6)
+
+
 def test_grid_normals_agree_with_open3d_plane_fits():
     # Reference: Open3D's estimate_normals (local plane fits, oriented to the camera).
     from stereomesh.geometry.organised import grid_normals

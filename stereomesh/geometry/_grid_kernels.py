@@ -91,51 +91,64 @@ def gradient_normals(points, pixels, index, radius):
     Over the window, the mean of ``P(c+1) − P(c−1)`` along rows and of
     ``P(r+1) − P(r−1)`` along columns span the tangent plane; their cross
     product is the normal. Points without both gradients get ``(0, 0, −1)``.
+
+    The window sums are box sums of the two gradient fields: per image row,
+    the sums over the window's rows are formed once per column, then each
+    point adds ``2 radius + 1`` of them, instead of visiting its whole window
+    (``organised._grid_normals_reference`` does that, for the tests).
     """
     n = points.shape[0]
     h, w = index.shape
     out = np.zeros((n, 3), np.float32)
-    for i in prange(n):
-        col, row = pixels[i, 0], pixels[i, 1]
-        ux = uy = uz = 0.0
-        vx = vy = vz = 0.0
-        nu = 0
-        nv = 0
-        for dy in range(-radius, radius + 1):
-            r = row + dy
-            if r < 0 or r >= h:
+    for r_ in prange(h):
+        r = np.int64(r_)  # prange's index is unsigned
+        # Per column: sums of the row gradient (0-2), its count (3), of the column
+        # gradient (4-6) and its count (7), over the window's rows.
+        col = np.zeros((w, 8))
+        for rr in range(max(r - radius, 0), min(r + radius, h - 1) + 1):
+            for c in range(1, w - 1):
+                a, b = index[rr, c - 1], index[rr, c + 1]
+                if a >= 0 and b >= 0:
+                    col[c, 0] += points[b, 0] - points[a, 0]
+                    col[c, 1] += points[b, 1] - points[a, 1]
+                    col[c, 2] += points[b, 2] - points[a, 2]
+                    col[c, 3] += 1.0
+            if 1 <= rr < h - 1:
+                for c in range(w):
+                    a, b = index[rr - 1, c], index[rr + 1, c]
+                    if a >= 0 and b >= 0:
+                        col[c, 4] += points[b, 0] - points[a, 0]
+                        col[c, 5] += points[b, 1] - points[a, 1]
+                        col[c, 6] += points[b, 2] - points[a, 2]
+                        col[c, 7] += 1.0
+        for c in range(w):
+            i = index[r, c]
+            if i < 0:
                 continue
-            for dx in range(-radius, radius + 1):
-                c = col + dx
-                if c < 0 or c >= w:
-                    continue
-                if c - 1 >= 0 and c + 1 < w:
-                    a, b = index[r, c - 1], index[r, c + 1]
-                    if a >= 0 and b >= 0:
-                        ux += points[b, 0] - points[a, 0]
-                        uy += points[b, 1] - points[a, 1]
-                        uz += points[b, 2] - points[a, 2]
-                        nu += 1
-                if r - 1 >= 0 and r + 1 < h:
-                    a, b = index[r - 1, c], index[r + 1, c]
-                    if a >= 0 and b >= 0:
-                        vx += points[b, 0] - points[a, 0]
-                        vy += points[b, 1] - points[a, 1]
-                        vz += points[b, 2] - points[a, 2]
-                        nv += 1
-        nx = uy * vz - uz * vy
-        ny = uz * vx - ux * vz
-        nz = ux * vy - uy * vx
-        length = np.sqrt(nx * nx + ny * ny + nz * nz)
-        if nu == 0 or nv == 0 or length == 0.0:
-            out[i, 2] = -1.0
-            continue
-        # Toward the camera at the origin: n · (−p) >= 0.
-        if nx * points[i, 0] + ny * points[i, 1] + nz * points[i, 2] > 0:
-            length = -length
-        out[i, 0] = nx / length
-        out[i, 1] = ny / length
-        out[i, 2] = nz / length
+            ux = uy = uz = nu = 0.0
+            vx = vy = vz = nv = 0.0
+            for cc in range(max(c - radius, 0), min(c + radius, w - 1) + 1):
+                ux += col[cc, 0]
+                uy += col[cc, 1]
+                uz += col[cc, 2]
+                nu += col[cc, 3]
+                vx += col[cc, 4]
+                vy += col[cc, 5]
+                vz += col[cc, 6]
+                nv += col[cc, 7]
+            nx = uy * vz - uz * vy
+            ny = uz * vx - ux * vz
+            nz = ux * vy - uy * vx
+            length = np.sqrt(nx * nx + ny * ny + nz * nz)
+            if nu == 0.0 or nv == 0.0 or length == 0.0:
+                out[i, 2] = -1.0
+                continue
+            # Toward the camera at the origin: n · (−p) >= 0.
+            if nx * points[i, 0] + ny * points[i, 1] + nz * points[i, 2] > 0:
+                length = -length
+            out[i, 0] = nx / length
+            out[i, 1] = ny / length
+            out[i, 2] = nz / length
     return out
 
 

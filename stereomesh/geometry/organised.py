@@ -128,6 +128,33 @@ def _passes(mean: np.ndarray, std_ratio: float) -> np.ndarray:
     return finite & (mean <= mu + std_ratio * sd)
 
 
+def _grid_normals_reference(cloud: PointCloud, radius: int = 2) -> np.ndarray:
+    """:func:`grid_normals` point by point over the whole window (slow, for the tests)."""
+    index = pixel_index(cloud)
+    h, w = index.shape
+    p = cloud.points
+    out = np.zeros((len(cloud), 3), np.float32)
+    for i, (col, row) in enumerate(cloud.pixels):
+        u = np.zeros(3)
+        v = np.zeros(3)
+        nu = nv = 0
+        for r in range(max(row - radius, 0), min(row + radius, h - 1) + 1):
+            for c in range(max(col - radius, 0), min(col + radius, w - 1) + 1):
+                if 0 < c < w - 1 and index[r, c - 1] >= 0 and index[r, c + 1] >= 0:
+                    u += p[index[r, c + 1]] - p[index[r, c - 1]]
+                    nu += 1
+                if 0 < r < h - 1 and index[r - 1, c] >= 0 and index[r + 1, c] >= 0:
+                    v += p[index[r + 1, c]] - p[index[r - 1, c]]
+                    nv += 1
+        normal = np.cross(u, v)
+        length = np.linalg.norm(normal)
+        if nu == 0 or nv == 0 or length == 0:
+            out[i] = (0.0, 0.0, -1.0)
+            continue
+        out[i] = normal / (length if normal @ -p[i] >= 0 else -length)
+    return out
+
+
 def grid_outlier_keep_reference(cloud: PointCloud, neighbors: int = 20,
                                 std_ratio: float = 2.0) -> np.ndarray:
     """:func:`grid_outlier_keep` in plain numpy, point by point (slow, for the tests)."""
