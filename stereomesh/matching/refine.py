@@ -181,10 +181,16 @@ def align_subpixel(
 
 def _first_half_sides(first_window, rx, ry, passes):
     """Half sides of the first pass's window: ``first_window``'s when later passes follow."""
-    w, h = (int(v) for v in first_window)
+    fx, fy = _half_sides(first_window, "first_window")
+    return (min(fx, rx), min(fy, ry)) if int(passes) > 1 else (rx, ry)
+
+
+def _half_sides(window, name="window"):
+    """``(width // 2, height // 2)`` of a window whose sides are odd, the width at least 3."""
+    w, h = (int(v) for v in window)
     if w < 3 or h < 1 or w % 2 == 0 or h % 2 == 0:
-        raise ValueError(f"first_window sides must be odd (width at least 3), got {w}x{h}")
-    return (min(w // 2, rx), min(h // 2, ry)) if int(passes) > 1 else (rx, ry)
+        raise ValueError(f"{name} sides must be odd (width at least 3), got {w}x{h}")
+    return w // 2, h // 2
 
 
 def _passes(fit, disparity, iterations, passes, first, later):
@@ -202,10 +208,7 @@ def _check_align(left, right, disparity, window):
     if arrays[0].ndim != 2 or any(a.shape != arrays[0].shape for a in arrays):
         raise ValueError("left, right and disparity must be (H, W) arrays of one shape, got "
                          f"{[a.shape for a in arrays]}")
-    w, h = (int(v) for v in window)
-    if w < 3 or h < 1 or w % 2 == 0 or h % 2 == 0:
-        raise ValueError(f"window sides must be odd (width at least 3), got {w}x{h}")
-    return (*arrays, w // 2, h // 2)
+    return (*arrays, *_half_sides(window))
 
 
 def _cubic_reference(rows: np.ndarray, xr: np.ndarray):
