@@ -10,8 +10,10 @@ from __future__ import annotations
 import numpy as np
 from numba import njit, prange
 
+from stereomesh._parallel import prange_only
 
-@njit(cache=True, parallel=True)
+
+@njit(cache=True, parallel=prange_only())
 def mean_neighbour_distance(points, pixels, index, k, radius):
     """Mean distance from each point to its ``k`` nearest points within the window.
 
@@ -33,13 +35,15 @@ def mean_neighbour_distance(points, pixels, index, k, radius):
     for dy in range(-radius, radius + 1):
         for dx in range(-radius, radius + 1):
             if dx != 0 or dy != 0:
-                ring[q] = dx * dx + dy * dy
-                off_row[q] = dy
-                off_col[q] = dx
+                # Insertion by ring, ties in raster order (a stable sort of a few
+                # dozen offsets; numba's argsort took 1.8 s to compile).
+                d2 = dx * dx + dy * dy
+                j = q
+                while j > 0 and ring[j - 1] > d2:
+                    ring[j], off_row[j], off_col[j] = ring[j - 1], off_row[j - 1], off_col[j - 1]
+                    j -= 1
+                ring[j], off_row[j], off_col[j] = d2, dy, dx
                 q += 1
-    order = np.argsort(ring, kind="mergesort")
-    off_row = off_row[order]
-    off_col = off_col[order]
     out = np.empty(n, np.float64)
     # One buffer per chunk of points, not one per point: the allocation cost
     # more than the distances.
@@ -93,7 +97,7 @@ def mean_neighbour_distance(points, pixels, index, k, radius):
     return out
 
 
-@njit(cache=True, parallel=True)
+@njit(cache=True, parallel=prange_only())
 def gradient_normals(points, pixels, index, radius):
     """Unit normals from the mean image-space gradients of position, toward the camera.
 
@@ -193,7 +197,7 @@ def _triangle_normal(z, cols, rows, r, c, t):
     return ay * bz - az * by, az * bx - ax * bz, ax * by - ay * bx
 
 
-@njit(cache=True, parallel=True)
+@njit(cache=True, parallel=prange_only())
 def grid_triangles(z, valid, cols, rows, limit):
     """Triangles kept in each 2x2 block of the grid, as a bit code per block.
 
@@ -263,7 +267,7 @@ def _kept_at_corner(code, r, c, t, k):
     return (code[br, bc] >> t) & 1 != 0, br, bc
 
 
-@njit(cache=True, parallel=True)
+@njit(cache=True, parallel=prange_only())
 def grid_vertices(code, z, cols, rows):
     """Vertex ids (-1 where no kept triangle uses the pixel) and summed face normals.
 
@@ -309,7 +313,7 @@ def grid_vertices(code, z, cols, rows):
     return vid, normals
 
 
-@njit(cache=True, parallel=True)
+@njit(cache=True, parallel=prange_only())
 def grid_faces(code, vid):
     """Faces ``(F, 3)`` int32 of the block codes: blocks in row-major order, types 0-3 in each."""
     hb, wb = code.shape
@@ -381,7 +385,8 @@ def invalid_components(valid):
                 n_prov += 1
                 if n_prov >= parent.shape[0]:
                     grown = np.zeros(2 * parent.shape[0], np.int32)
-                    grown[: parent.shape[0]] = parent
+                    for i in range(parent.shape[0]):  # a slice copy compiles seconds of error text
+                        grown[i] = parent[i]
                     parent = grown
                 parent[n_prov] = n_prov
                 label = n_prov

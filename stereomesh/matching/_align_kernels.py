@@ -12,6 +12,7 @@ from llvmlite import ir
 from numba import njit, prange, types
 from numba.extending import intrinsic
 
+from stereomesh._parallel import prange_only
 from stereomesh.matching._simd import _element_pointer
 
 
@@ -77,7 +78,7 @@ _WORK_ROWS = 21 + 3 * _GROUP
 _U = np.uint64  # unsigned indices: numba's wraparound of negative ones defeats vectorising
 
 
-@njit(cache=True, parallel=True)
+@njit(cache=True, parallel=prange_only())
 def align_subpixel_kernel(left, right, init, rx, ry, tol, iterations, max_shift):
     """Disparity, its Gauss-Newton standard deviation and a converged flag per pixel.
 
@@ -407,7 +408,7 @@ def _steps(work, nb, fits):
         fits[_U(2 * _BLOCK + q)] = 1.0 if ok else 0.0
 
 
-@njit(cache=True, parallel=True)
+@njit(cache=True, parallel=prange_only())
 def sigma_d_map(sigma_fit, disparity, scale, floor2, edge_factor, failed):
     """Disparity sigma from the fit's: see :func:`stereomesh.matching.disparity.alignment_sigma`.
 

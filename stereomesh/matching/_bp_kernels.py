@@ -25,6 +25,7 @@ from __future__ import annotations
 import numpy as np
 from numba import njit, prange
 
+from stereomesh._parallel import prange_only
 from stereomesh.matching._kernels import _popcount64, _valid_range
 from stereomesh.matching._simd import (
     LANES,
@@ -163,7 +164,7 @@ def _message(h, delta, kind, steps, w, cap):
     return _truncate(_rewindow(_envelope(h, kind, steps, w), delta, w), hm, cap)
 
 
-@njit(cache=True, parallel=True)
+@njit(cache=True, parallel=prange_only())
 def messages(h, delta, kind, steps, w, cap):
     """:func:`_message` of each row of ``h`` ((N, LANES) uint16), as (N, LANES) uint8.
 
@@ -181,7 +182,7 @@ def messages(h, delta, kind, steps, w, cap):
 # Data costs
 
 
-@njit(cache=True, parallel=True)
+@njit(cache=True, parallel=prange_only())
 def census_at_labels(cl, cr, labels, d_min, invalid):
     """Census cost of each pixel at its label (``invalid`` where the match leaves the image)."""
     h, w = labels.shape
@@ -265,7 +266,7 @@ def _row_costs(src, l, e, y, x0, x1, offs, full, out, row_base, tmp):
             vstore(out, row_base + (x * nwin + j) * LANES, _scaled(acc, net, n_disp - o))
 
 
-@njit(cache=True, parallel=True)
+@njit(cache=True, parallel=prange_only())
 def fill_full_level_data(src, l, e, hl, wl, nv, data):
     """:func:`full_level_data` into ``data`` (for reused memory)."""
     offs = np.zeros((1, 2), np.int32)
@@ -442,7 +443,7 @@ def _half_row(y, colour, x0, x1, hl, wl, sm, s0, sp, data, off, msg, lab, pw, tr
     return changed
 
 
-@njit(cache=True, parallel=True)
+@njit(cache=True, parallel=prange_only())
 def fill_level(src, l, e, hl, wl, dp, parent, pw, data, off, msg, lab):
     """:func:`init_level` into the given arrays (for reused memory)."""
     for y in prange(hl):
@@ -461,7 +462,7 @@ def init_level(src, l, e, hl, wl, dp, parent, pw):
     return data, off, msg, lab
 
 
-@njit(cache=True, parallel=True)
+@njit(cache=True, parallel=prange_only())
 def _sweep(data, off, msg, lab, pw, colour, track, counts):
     hl, wl = lab.shape
     for y in prange(hl):
@@ -573,7 +574,7 @@ def _half_row_wide(y, colour, hl, wl, nv, data, msg, lab, pw, track, buf):
     return changed
 
 
-@njit(cache=True, parallel=True)
+@njit(cache=True, parallel=prange_only())
 def _sweep_wide(data, msg, lab, pw, colour, track, counts):
     hl, wl = lab.shape
     nv = data.shape[2] // LANES
@@ -605,7 +606,7 @@ def iterate_full_level(data, msg, lab, pw, iterations, tolerance):
 # Beliefs and winners
 
 
-@njit(cache=True, parallel=True)
+@njit(cache=True, parallel=prange_only())
 def full_level_labels(data, msg):
     """Winner (smallest belief, smallest label on ties) of every pixel of the full level."""
     hl, _, wl, vp = msg.shape
@@ -632,7 +633,7 @@ def full_level_labels(data, msg):
     return out
 
 
-@njit(cache=True, parallel=True)
+@njit(cache=True, parallel=prange_only())
 def level_labels(data, off, msg):
     """Winner (smallest belief over both windows, smallest label on ties) of every pixel."""
     hl, wl = off.shape[:2]
@@ -651,7 +652,7 @@ def level_labels(data, off, msg):
     return out
 
 
-@njit(cache=True, parallel=True)
+@njit(cache=True, parallel=prange_only())
 def dense_beliefs(data, off, msg, n_labels, scale):
     """Beliefs ``(H, W, n_labels)`` float32 times ``scale``; inf outside both windows."""
     hl, wl = off.shape[:2]
@@ -671,7 +672,7 @@ def dense_beliefs(data, off, msg, n_labels, scale):
     return out
 
 
-@njit(cache=True, parallel=True)
+@njit(cache=True, parallel=prange_only())
 def full_dense_beliefs(data, msg, n_labels, scale):
     """:func:`dense_beliefs` of the full level."""
     hl, _, wl, vp = msg.shape
@@ -754,7 +755,7 @@ def _final_row(y, s0, x0, x1, wl, d_min, n_disp, use_volume, data, off, msg, win
 # The finest level, streamed
 
 
-@njit(cache=True, parallel=True)
+@njit(cache=True, parallel=prange_only())
 def stream_finest(src, e, dp, parent, pw, iterations, bounds, offset, winners_only=False):
     """Checkerboard belief propagation on the finest level in a ring of rows.
 

@@ -13,6 +13,8 @@ from __future__ import annotations
 import numpy as np
 from numba import njit, prange
 
+from stereomesh._parallel import prange_only
+
 _BIG = np.int32(1 << 28)
 
 
@@ -48,7 +50,7 @@ def edge_padded(image, pad_rows, pad_cols):
     return np.pad(image, ((pad_rows, pad_rows), (pad_cols, pad_cols)), mode="edge")
 
 
-@njit(cache=True, parallel=True)
+@njit(cache=True, parallel=prange_only())
 def census_planes(strings, planes, pad_left, pad_right, reverse):
     """Census strings split into 16-bit planes, ``(planes, H, pad_left + W + pad_right)``.
 
@@ -83,7 +85,7 @@ def _census_row(padded, y, win_w, win_h, row):
                 row[x] = (row[x] << one) | (one if src[x] < centre[x] else zero)
 
 
-@njit(cache=True, parallel=True)
+@njit(cache=True, parallel=prange_only())
 def census_transform(padded, win_w, win_h):
     """Census bit string per pixel: bit set where the neighbour is darker than the centre.
 
@@ -99,7 +101,7 @@ def census_transform(padded, win_w, win_h):
     return out
 
 
-@njit(cache=True, parallel=True)
+@njit(cache=True, parallel=prange_only())
 def census_planes_of_image(padded, win_w, win_h, planes, pad_left, pad_right, reverse):
     """:func:`census_transform` written straight into 16-bit planes (see :func:`census_planes`).
 
@@ -143,7 +145,7 @@ def census_planes_of_image(padded, win_w, win_h, planes, pad_left, pad_right, re
     return out
 
 
-@njit(cache=True, parallel=True)
+@njit(cache=True, parallel=prange_only())
 def census_cost_volume(census_left, census_right, d_min, n_disp, invalid_cost):
     """Hamming distance between left pixel x and right pixel x - d for each hypothesis."""
     H, W = census_left.shape
@@ -229,7 +231,7 @@ def _horizontal_row(cost, gray, y, p1, p2, g_scale, total, reverse, overwrite, p
         cur = tmp
 
 
-@njit(cache=True, parallel=True)
+@njit(cache=True, parallel=prange_only())
 def aggregate_horizontal(cost, gray, p1, p2, g_scale, total, reverse):
     """Add the left-to-right (or right-to-left) path costs into ``total``."""
     H, W, D = cost.shape
@@ -240,7 +242,7 @@ def aggregate_horizontal(cost, gray, p1, p2, g_scale, total, reverse):
     return total
 
 
-@njit(cache=True, parallel=True)
+@njit(cache=True, parallel=prange_only())
 def aggregate_vertical(cost, gray, p1, p2, g_scale, total, upward, diagonals):
     """Add the vertical (and, if ``diagonals``, both diagonal) path costs into ``total``.
 
@@ -306,7 +308,7 @@ def aggregate_vertical(cost, gray, p1, p2, g_scale, total, upward, diagonals):
     return total
 
 
-@njit(cache=True, parallel=True)
+@njit(cache=True, parallel=prange_only())
 def select_left(volume, d_min):
     """Winner per pixel with its cost, the second-best cost away from it, and neighbours.
 
@@ -354,7 +356,7 @@ def select_left(volume, d_min):
     return best_k, c_best, c_second, c_minus, c_plus
 
 
-@njit(cache=True, parallel=True)
+@njit(cache=True, parallel=prange_only())
 def select_right(volume, d_min):
     """Winner for each right-image pixel, read diagonally from the left volume.
 
@@ -488,7 +490,7 @@ def _occlusion_by_step_row(y, classes, disparity, min_step):
                     classes[y, i] = 2
 
 
-@njit(cache=True, parallel=True)
+@njit(cache=True, parallel=prange_only())
 def refine_winners(best_left, best_right, c_minus, c_best, c_plus, d_min, n_disp, max_diff,
                    subpixel_kind, min_step):
     """Classes, left-right differences and sub-pixel disparity, row by row.
@@ -514,7 +516,7 @@ def refine_winners(best_left, best_right, c_minus, c_best, c_plus, d_min, n_disp
     return classes, lr_diff, disparity
 
 
-@njit(cache=True, parallel=True)
+@njit(cache=True, parallel=prange_only())
 def confidence_kernel(c_best, c_second, lr_diff, gray, peak_ratio_scale, lr_sigma, texture_scale):
     """Product of the peak-ratio, left-right and texture cues; see ``confidence_map``.
 
@@ -605,7 +607,7 @@ def _reflect101(i, n):
     return i
 
 
-@njit(cache=True, parallel=True)
+@njit(cache=True, parallel=prange_only())
 def grid_energy_terms(labels, cost, at_labels, kind, weight, trunc, p1, p2):
     """Unary and pairwise sums of the 4-connected grid energy for integer labels.
 
@@ -649,7 +651,7 @@ def grid_energy_terms(labels, cost, at_labels, kind, weight, trunc, p1, p2):
     return unary_rows.sum(), pair_rows.sum()
 
 
-@njit(cache=True, parallel=True)
+@njit(cache=True, parallel=prange_only())
 def ad_gradient_cost_volume(left, right, grad_left, grad_right, d_min, n_disp, trunc_intensity,
                             trunc_gradient, gradient_weight, scale, invalid_cost):
     """Truncated absolute intensity + horizontal-gradient difference, scaled to ``scale``."""
@@ -670,7 +672,7 @@ def ad_gradient_cost_volume(left, right, grad_left, grad_right, d_min, n_disp, t
     return cost
 
 
-@njit(cache=True, parallel=True)
+@njit(cache=True, parallel=prange_only())
 def aggregate_horizontal_both(cost, gray, p1, p2, g_scale, total):
     """Write both horizontal path costs into ``total`` (overwriting it), row by row.
 

@@ -40,6 +40,7 @@ import numpy as np
 from numba import njit, prange, types
 from numba.extending import overload
 
+from stereomesh._parallel import prange_only
 from stereomesh.matching._kernels import _penalty2, _popcount64, _valid_range
 from stereomesh.matching._simd import (
     BYTE_LANES,
@@ -456,7 +457,9 @@ def _pick(m1, m2, at, inf):
 
 @njit(cache=True)
 def _select_row(r, final, d_min, n_disp, best_k, c_best, c_second, c_minus, c_plus):
-    """Left winners of row ``r`` from its summed costs in ``final[r & 1]``.
+    """Left winners of row ``r`` from its summed costs, row ``r & 1`` of ``final``.
+
+    ``final`` holds two rows of ``W * dp`` sums, flat (pixel-major).
 
     Ties go to the smallest hypothesis; ``c_second`` is the best cost at least
     two hypotheses from the winner (inf if none); ``c_minus``/``c_plus`` equal
@@ -472,8 +475,7 @@ def _select_row(r, final, d_min, n_disp, best_k, c_best, c_second, c_minus, c_pl
     independent chains keep the core busy.
     """
     H, W = best_k.shape
-    dp = final.shape[2]
-    flat = final.reshape(-1)
+    dp = final.shape[0] // (2 * W)
     nb = dp // LANES
     inf = vsplat(np.uint16(INF16))
     half = (W + 1) // 2
@@ -525,8 +527,8 @@ def _select_row(r, final, d_min, n_disp, best_k, c_best, c_second, c_minus, c_pl
                 best_k[r, x] = bk
                 c_best[r, x] = bv
                 c_second[r, x] = np.inf if second == INF16 else np.float32(second)
-                c_minus[r, x] = flat[f0 + bk - 1] if bk > k_lo else bv
-                c_plus[r, x] = flat[f0 + bk + 1] if bk < k_hi - 1 else bv
+                c_minus[r, x] = final[f0 + bk - 1] if bk > k_lo else bv
+                c_plus[r, x] = final[f0 + bk + 1] if bk < k_hi - 1 else bv
 
 
 @njit(cache=True)
@@ -770,7 +772,9 @@ def _merge_right(v, o, m, a):
 
 @njit(cache=True)
 def _right_winners(r, final, d_min, n_disp, rmin, rarg, best_right):
-    """Right-image winners of row ``r`` from its final sums ``final[r & 1]``.
+    """Right-image winners of row ``r`` from its final sums, row ``r & 1`` of ``final``.
+
+    ``final`` holds two rows of ``W * dp`` sums, flat (pixel-major).
 
     Right pixel ``xr`` takes the hypothesis ``k`` minimising the sum at left pixel
     ``xr + d_min + k`` (smallest ``k`` on ties; -1 if none is valid): the
@@ -785,7 +789,7 @@ def _right_winners(r, final, d_min, n_disp, rmin, rarg, best_right):
     aligned store before it.
     """
     H, W = best_right.shape
-    dp = final.shape[2]
+    dp = final.shape[0] // (2 * W)
     nb = dp // LANES
     row = (r & 1) * W * dp
     if nb > WINDOW_VECTORS:
@@ -843,7 +847,7 @@ def _right_winners_buffered(r, final, d_min, n_disp, rmin, rarg, best_right):
     visited ``LANES`` apart so that each load meets the aligned store before it.
     """
     H, W = best_right.shape
-    dp = final.shape[2]
+    dp = final.shape[0] // (2 * W)
     nb = dp // LANES
     row = (r & 1) * W * dp
     rmin[:] = INF16
@@ -1020,10 +1024,10 @@ def buffer_shapes(H, W, dp, diagonals, block_rows, narrow_paths, byte_paths=Fals
     cost_type = np.uint8 if byte_paths else np.uint16
     return [(work, path), (work, path), ((n_ckpt, ndir, W, dp), path),
             ((n_ckpt, ndir, W), np.uint16), ((block_rows, W, dp), np.uint16),
-            ((2, W, dp), np.uint16), (row2, cost_type), (row2, cost_type), (row2, np.uint16)]
+            (row2, np.uint16), (row2, cost_type), (row2, cost_type), (row2, np.uint16)]
 
 
-@njit(cache=True, parallel=True)
+@njit(cache=True, parallel=prange_only())
 def sgm_solve(cl, crev, vol, use_volume, gray, d_min, n_disp, dp, invalid, pad_cost, p1, p2,
               g_scale, diagonals, block_rows, cost_bits, fwd_pad, bounds_even, bounds_down,
               bounds_up, work_down, work_up, ckpt, ckpt_min, fwd, final, crow_down, crow_up,
@@ -1069,7 +1073,6 @@ def sgm_solve(cl, crev, vol, use_volume, gray, d_min, n_disp, dp, invalid, pad_c
     hbuf_memory = np.zeros(5 * dp + BYTE_LANES, crow_down.dtype)
     start = ((-hbuf_memory.ctypes.data) % BYTE_LANES) // hbuf_memory.itemsize
     hbuf = hbuf_memory[start : start + 5 * dp]
-    final_flat = final.reshape(-1)
     rmin = np.empty(W + dp, np.uint16)
     rarg = np.empty(W + dp, np.uint16)
     best_k = np.empty((H, W), np.int32)
@@ -1100,7 +1103,7 @@ def sgm_solve(cl, crev, vol, use_volume, gray, d_min, n_disp, dp, invalid, pad_c
         work = work_up if up else work_down
         pmin = pmin_up if up else pmin_down
         crow = crow_up if up else crow_down
-        part = final_flat if up else part_down
+        part = final if up else part_down
         parity = st[_PARITY]
         for j in range(lanes + 1):
             bounds[j] = min(max(np.int64(edges[phase, j] + 0.5), 0), W)
@@ -1131,7 +1134,10 @@ def sgm_solve(cl, crev, vol, use_volume, gray, d_min, n_disp, dp, invalid, pad_c
                 _right_winners(st[_SELECT], final, d_min, n_disp, rmin, rarg, best_right)
             busy[t] = cycle_counter() - start_cycles
         if st[_COLS] >= 0 and lanes > 1:
-            spent[phase] += busy
+            # Element by element: a slice assigned from an array compiles numba's
+            # shape-mismatch message formatting, seconds of a cold start.
+            for t in range(lanes):
+                spent[phase, t] += busy[t]
             measured[phase] += 1
             if measured[phase] == REBALANCE_STEPS:
                 _rebalance(edges[phase], spent[phase], W)
@@ -1140,7 +1146,7 @@ def sgm_solve(cl, crev, vol, use_volume, gray, d_min, n_disp, dp, invalid, pad_c
     return best_k, c_best, c_second, c_minus, c_plus, best_right
 
 
-@njit(cache=True, parallel=True)
+@njit(cache=True, parallel=prange_only())
 def census_unary(cl, crev, labels, d_min, invalid):
     """Census cost of each pixel at its label (the unary term of the energy).
 
