@@ -468,9 +468,9 @@ def warm_up_stages(stop_after: str = "repair") -> None:
     """Compile (or load) the kernels of the stages around the solver, on a tiny pair.
 
     Runs the stages with default parameters on a 48 × 64 synthetic pair, the
-    solver replaced by a fixed answer (the pair's true shift), so that
-    everything the default path needs except the SGM kernels is compiled: the
-    refinement, confidence and energy kernels and the geometry stages up to
+    solver replaced by a fixed answer (the pair's true shift), so that the
+    kernels the default path needs besides the SGM solver are compiled: the
+    refinement, alignment and energy kernels and the geometry stages up to
     ``stop_after``. The first run after an install starts it in a second
     process while the first compiles the solver.
 
@@ -478,15 +478,19 @@ def warm_up_stages(stop_after: str = "repair") -> None:
     (the sub-pixel alignment is the longest compile after it), then the
     geometry from the last stage back, so that the command's process, which
     reaches the geometry in stage order, and this one compile from opposite
-    ends and meet in the middle instead of compiling the same kernels.
+    ends and meet in the middle instead of compiling the same kernels. The σ
+    and confidence kernels, which the command reaches as this process would
+    finish the alignment, are left to the command.
 
     Examples
     --------
     >>> warm_up_stages("disparity")
     """
     from stereomesh.geometry._mesh_kernels import kept_faces
+    from stereomesh.geometry.grid_repair import _hole_labels
     from stereomesh.geometry.repair import _small_components, count_boundary_loops
     from stereomesh.io._render_kernels import downsample, rasterise
+    from stereomesh.matching import confidence
     from stereomesh.matching import disparity as engine
     from stereomesh.matching._sgm_kernels import census_unary
     from stereomesh.matching.winners import Winners
@@ -505,14 +509,25 @@ def warm_up_stages(stop_after: str = "repair") -> None:
         low, high = np.zeros((h, w), np.float32), np.full((h, w), 10.0, np.float32)
         return Winners(best, low, high, high * 0.5, high * 0.5, best.copy(), low.copy()), {}
 
+    def fixed_sigma(sigma_fit, disparity=None):
+        return np.full(sigma_fit.shape, 0.1, np.float32)
+
+    def fixed_confidence(c_best, *args, **kwargs):
+        return np.ones(np.shape(c_best), np.float32)
+
     params = Params().with_overrides({"disp_range": "0:16", "speckle_size": 0})
     planes = np.zeros((3, 4, 8), np.uint16)
     census_unary(planes, planes, np.zeros((4, 8), np.int32), 0, 48.0)
-    solver, engine._solve = engine._solve, fixed_answer
+    # The σ and confidence kernels come right after the alignment: the command
+    # reaches them as this process would, so it compiles them itself and this
+    # one goes on to the geometry.
+    saved = engine._solve, engine.alignment_sigma, confidence.confidence_map
+    engine._solve, engine.alignment_sigma, confidence.confidence_map = (
+        fixed_answer, fixed_sigma, fixed_confidence)
     try:
         disparity_of_pair(pair, params)
     finally:
-        engine._solve = solver
+        engine._solve, engine.alignment_sigma, confidence.confidence_map = saved
     last = STAGES.index(stop_after)
     if last < STAGES.index("filter_cloud"):
         return
@@ -525,6 +540,7 @@ def warm_up_stages(stop_after: str = "repair") -> None:
         _small_components(corners, square, 0.01)
         count_boundary_loops(square, 4)
         kept_faces(square, np.ones(2, bool), 4)
+        _hole_labels(np.ones((4, 4), bool))
     # A made-up disparity map with a small hole for the repair.
     disparity = np.full((48, 64), float(shift), np.float32)
     disparity[20:23, 30:33] = np.nan
