@@ -133,11 +133,11 @@ class DisparityParams(_Section):
                               "the window's slant from the one before and makes one step",
                               min=1, max=4)
     align_first_width: int = param(7, "alignment refinement: window width of the first "
-                                   "pass when later passes follow, odd, pixels (at most "
-                                   "align_width)", min=3, max=31)
+                                   "pass when later passes follow, odd, pixels (a wider one "
+                                   "is cut to align_width)", min=3, max=31)
     align_first_height: int = param(5, "alignment refinement: window height of the first "
-                                    "pass when later passes follow, odd, pixels (at most "
-                                    "align_height)", min=1, max=31)
+                                    "pass when later passes follow, odd, pixels (a taller "
+                                    "one is cut to align_height)", min=1, max=31)
     lr_max_diff: int = param(1, "left-right check tolerance, pixels", min=0, max=16)
     speckle_size: int = param(100, "largest blob removed as speckle, pixels; 0 disables",
                               min=0)
